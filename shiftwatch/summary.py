@@ -441,7 +441,10 @@ def summarize(
     safe = cnt.clamp_min(1)
     shift64 = shift.reshape(1, n_ch).to(f64)
     m_rc = torch.where(cnt > 0, s1 / safe + shift64, torch.zeros_like(s1))
-    m2_rc = torch.where(cnt > 0, (s2 - s1 * s1 / safe).clamp_min(0), torch.zeros_like(s1))
+    if per_row == 1:  # one value per cell: no within-cell spread (avoid rounding residue)
+        m2_rc = torch.zeros_like(s1)
+    else:
+        m2_rc = torch.where(cnt > 0, (s2 - s1 * s1 / safe).clamp_min(0), torch.zeros_like(s1))
 
     # Column C holds each row's layer-wide triple (its channels merged), so one set of
     # reductions over rows fills the channel rows and the layer row of the table alike.
