@@ -11,16 +11,14 @@ __version__ = "0.1.0"
 from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning, UnsupportedInputError
 from .summary import FIELDS, Summary, make_edges, summarize
 
-__all__ = sorted(
-    [
-        "ConfigError",
-        "FIELDS",
-        "ShiftAlertError",
-        "ShiftWatchWarning",
-        "Summary",
-        "UnsupportedInputError",
-        "__version__",
-        "make_edges",
-        "summarize",
-    ]
-)
+__all__ = [
+    "FIELDS",
+    "ConfigError",
+    "ShiftAlertError",
+    "ShiftWatchWarning",
+    "Summary",
+    "UnsupportedInputError",
+    "__version__",
+    "make_edges",
+    "summarize",
+]

@@ -292,7 +292,7 @@ def hist_scores(
             nz = (spread / (2 * e_r)).sum(-1)
         elif name == "js":
             m = 0.5 * (sp_c + sp_r)
-            value = 0.5 * (sp_c * np.log(sp_c / m)).sum(-1) + 0.5 * (sp_r * np.log(sp_r / m)).sum(-1)
+            value = 0.5 * ((sp_c * np.log(sp_c / m)).sum(-1) + (sp_r * np.log(sp_r / m)).sum(-1))
             nz = (spread / (8 * 0.5 * (e_c + e_r))).sum(-1)
         elif name == "psi":
             value = ((sp_c - sp_r) * np.log(sp_c / sp_r)).sum(-1)
@@ -370,10 +370,9 @@ def compare(
         raise KeyError(f"unknown metrics {unknown}; choose from {METRICS}")
     tc, tr = _table(cur)[-1], _table(ref)[-1]
     tp = [_table(p)[-1] for p in pool]
-    out = {
-        k: Score(float(v.value), float(v.noise))
-        for k, v in moment_scores(tc, tr, pool=tp, metrics=[m for m in metrics if m in MOMENT_METRICS]).items()
-    }
+    moment_m = [m for m in metrics if m in MOMENT_METRICS]
+    scores = moment_scores(tc, tr, pool=tp, metrics=moment_m)
+    out = {k: Score(float(v.value), float(v.noise)) for k, v in scores.items()}
     hist_m = [m for m in metrics if m in HIST_METRICS]
     if hist_m and cur.hist is not None and ref.hist is not None:
         if not np.array_equal(cur.edges.cpu().numpy(), ref.edges.cpu().numpy()):

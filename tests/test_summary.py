@@ -1,0 +1,244 @@
+"""Summary statistics checked against numpy float64 (reference library) and merge laws."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from shiftwatch import ConfigError, Summary, UnsupportedInputError, make_edges, summarize
+from shiftwatch.summary import FIELDS
+
+IX = {k: i for i, k in enumerate(FIELDS)}
+
+
+def channel_last(x: np.ndarray, cdim: int) -> np.ndarray:
+    """(N, ..., C) view with values of one channel along the last axis, rows first."""
+    x = np.moveaxis(x, cdim, -1)
+    return x.reshape(x.shape[0], -1, x.shape[-1])
+
+
+@pytest.mark.parametrize(
+    ("shape", "cdim"),
+    [((8, 3, 5, 7), 1), ((16, 10), -1), ((4, 6, 5), -1), ((2, 4, 3, 3, 3), 1), ((1, 5), 1)],
+)
+def test_moments_match_numpy_float64(shape, cdim):
+    g = torch.Generator().manual_seed(0)
+    x = torch.randn(*shape, generator=g) * 3 + 2
+    s = summarize(x, channel_dim=cdim)
+    ref = channel_last(x.double().numpy(), cdim)  # numpy float64 is the reference
+    np.testing.assert_allclose(s.mean(layer=False).numpy(), ref.mean(axis=(0, 1)), rtol=1e-6)
+    np.testing.assert_allclose(s.var(layer=False).numpy(), ref.var(axis=(0, 1)), rtol=1e-5)
+    np.testing.assert_allclose(float(s.mean()), ref.mean(), rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(float(s.var()), ref.var(), rtol=1e-5)
+    np.testing.assert_allclose(float(s.var(unbiased=True)), ref.var(ddof=1), rtol=1e-5)
+    assert float(s.count) == x.numel()
+    assert float(s.min) == pytest.approx(float(x.min())) and float(s.max) == pytest.approx(float(x.max()))
+    # row statistics: the spread of per-sample means (numpy reference)
+    row_means = ref.mean(axis=(1, 2))
+    t = s.table[-1]
+    assert float(t[IX["rows"]]) == shape[0]
+    np.testing.assert_allclose(float(t[IX["row_mean"]]), row_means.mean(), rtol=1e-6, atol=1e-9)
+    m2 = ((row_means - row_means.mean()) ** 2).sum()
+    np.testing.assert_allclose(float(t[IX["row_mean_m2"]]), m2, rtol=1e-5, atol=1e-9)
+
+
+def test_float32_large_offset_variance_is_stable():
+    # mean 1e4, std 1 in float32: a naive float32 sum of squares loses the variance entirely
+    g = torch.Generator().manual_seed(1)
+    x = (torch.randn(64, 16, 32, 32, generator=g, dtype=torch.float64) + 1e4).float()
+    s = summarize(x)
+    ref = channel_last(x.double().numpy(), 1)  # numpy float64 on the same float32 values
+    assert abs(float(s.var()) / ref.var() - 1) < 1e-3
+    np.testing.assert_allclose(s.var(layer=False).numpy(), ref.var(axis=(0, 1)), rtol=1e-3)
+    naive = (x.pow(2).mean() - x.mean().pow(2)).item()  # what the stable path avoids
+    assert abs(naive / ref.var() - 1) > 1e-3
+
+
+def test_nonfinite_values_are_excluded_and_counted():
+    x = torch.randn(6, 4, 10, generator=torch.Generator().manual_seed(5))
+    x[0, 0, 0] = math.nan
+    x[2, 1, 3] = math.inf
+    x[5, 3, :] = -math.inf  # a whole (row, channel) cell
+    s = summarize(x, edges=make_edges(-3, 3, 12), max_hist_values=None)
+    xn = x.double().numpy()
+    finite = np.where(np.isfinite(xn), xn, np.nan)
+    per_ch = np.moveaxis(finite, 1, -1).reshape(-1, 4)
+    # float32 sums: absolute error ~1e-7 of the values' scale (unit std here)
+    np.testing.assert_allclose(s.mean(layer=False).numpy(), np.nanmean(per_ch, 0), atol=1e-6)
+    np.testing.assert_allclose(s.var(layer=False).numpy(), np.nanvar(per_ch, 0), rtol=1e-5)
+    assert float(s.nonfinite) == 12
+    assert s.field("nonfinite", layer=False).tolist() == [1, 1, 0, 10]
+    assert float(s.count) == x.numel() - 12
+    assert float(s.min) == pytest.approx(np.nanmin(finite))
+    assert float(s.max) == pytest.approx(np.nanmax(finite))
+    assert float(s.hist.sum()) == x.numel() - 12
+    assert torch.isfinite(s.table).all()
+
+
+def test_histogram_matches_numpy_histogram():
+    g = torch.Generator().manual_seed(2)
+    x = torch.randn(50, 3, 20, generator=g)
+    edges = make_edges(-2.0, 2.0, 16)
+    s = summarize(x, edges=edges, max_hist_values=None)
+    v = x.double().numpy().ravel()
+    inner, _ = np.histogram(v, bins=edges.numpy())  # numpy reference (values never hit edges)
+    assert s.hist[1:-1].tolist() == inner.tolist()
+    assert float(s.hist[0]) == (v < -2).sum() and float(s.hist[-1]) == (v >= 2).sum()
+    # non-uniform edges take the binary-search path and must agree
+    odd = torch.tensor([-3.0, -1.0, -0.2, 0.0, 0.5, 2.5], dtype=torch.float64)
+    s2 = summarize(x, edges=odd, max_hist_values=None)
+    inner2, _ = np.histogram(v, bins=odd.numpy())
+    assert s2.hist[1:-1].tolist() == inner2.tolist()
+
+
+def test_histogram_subsample_is_capped():
+    x = torch.randn(64, 8, 32, 32)
+    s = summarize(x, edges=make_edges(-4, 4, 32), max_hist_values=10_000)
+    assert 5_000 <= float(s.hist.sum()) <= 10_000
+    assert float(s.count) == x.numel()  # moments always use every value
+
+
+@pytest.mark.parametrize(
+    "x",
+    [torch.zeros(0, 3, 4), torch.zeros(0, 5), torch.full((1, 3, 4, 4), 7.0), torch.full((9, 2), -2.0),
+     torch.randn(1, 4), torch.tensor(3.0), torch.randn(5)],
+    ids=["empty4d", "empty2d", "one-constant", "constant", "batch-of-one", "scalar", "vector"],
+)
+def test_degenerate_inputs_give_defined_results(x):
+    edges = make_edges(-1, 1, 4)
+    s = summarize(x, edges=edges, channel_dim=1)
+    assert torch.isfinite(s.table).all()
+    assert (s.var() >= 0).all()
+    from shiftwatch.divergence import compare, compare_channels
+
+    for other in (s, summarize(torch.randn(x.shape) if x.numel() else x, edges=edges)):
+        for score in compare(s, other).values():
+            assert math.isfinite(score.value) and math.isfinite(score.noise)
+            assert math.isfinite(float(score.ratio))
+        for score in compare_channels(other, s).values():
+            assert np.isfinite(score.value).all() and np.isfinite(score.ratio).all()
+
+
+@pytest.mark.parametrize("dtype", [torch.int64, torch.int32, torch.bool, torch.uint8, torch.complex64])
+def test_non_float_inputs_are_rejected(dtype):
+    x = torch.zeros(4, 3, dtype=dtype)
+    with pytest.raises(UnsupportedInputError, match="dtype"):
+        summarize(x)
+
+
+def test_bad_settings_name_the_field():
+    with pytest.raises(ConfigError, match="channel_dim"):
+        summarize(torch.randn(4, 3), channel_dim=0)
+    with pytest.raises(ConfigError, match="channel_dim"):
+        summarize(torch.randn(4, 3), channel_dim=5)
+    with pytest.raises(ConfigError, match="max_hist_values"):
+        summarize(torch.randn(4, 3), max_hist_values=0)
+    with pytest.raises(ConfigError, match="bins"):
+        make_edges(0, 1, 0)
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
+def test_half_precision_is_summarised_in_float32(dtype):
+    x = (torch.randn(32, 4, 8, 8) * 0.5 + 3).to(dtype)
+    s = summarize(x)
+    ref = channel_last(x.double().numpy(), 1)  # exact values of the half tensor, in float64
+    np.testing.assert_allclose(s.var(layer=False).numpy(), ref.var(axis=(0, 1)), rtol=1e-5)
+    assert s.table.dtype == torch.float64
+
+
+def test_merge_rejects_mismatches():
+    a = summarize(torch.randn(4, 3), edges=make_edges(-1, 1, 4))
+    with pytest.raises(ConfigError, match="edges"):
+        a.merge(summarize(torch.randn(4, 3), edges=make_edges(-2, 2, 4)))
+    with pytest.raises(ConfigError, match="channels"):
+        a.merge(summarize(torch.randn(4, 5), edges=make_edges(-1, 1, 4)))
+    with pytest.raises(ConfigError, match="histogram"):
+        a.merge(summarize(torch.randn(4, 3)))
+
+
+def test_dict_and_pack_round_trips():
+    s = summarize(torch.randn(7, 3, 5), edges=make_edges(-2, 2, 8))
+    back = Summary.from_dict(s.to_dict())
+    assert torch.equal(back.table, s.table) and torch.equal(back.hist, s.hist)
+    assert torch.equal(back.extrema, s.extrema) and torch.equal(back.edges, s.edges)
+    flat = s.pack()
+    assert flat.numel() == Summary.packed_size(3, 8)
+    un = Summary.unpack(flat, 3, s.edges)
+    assert torch.equal(un.table, s.table) and torch.equal(un.hist, s.hist)
+    empty = summarize(torch.zeros(0, 2))
+    assert Summary.from_dict(empty.to_dict()).extrema.tolist() == [math.inf, -math.inf]
+    with pytest.raises(ConfigError, match="schema"):
+        Summary.from_dict({**s.to_dict(), "schema": 99})
+
+
+# --------------------------------------------------------------------- merge property
+def _assert_same_summary(m: Summary, f: Summary):
+    """Merged vs concatenated, to float64 rounding of quantities of the data's scale."""
+    n = FIELDS.index
+    for col in ("n", "nonfinite", "rows"):
+        assert torch.equal(m.table[:, n(col)], f.table[:, n(col)]), col
+    for col in ("mean", "row_mean"):
+        diff = (m.table[:, n(col)] - f.table[:, n(col)]).abs()
+        sd = (f.table[:, n("m2")] / f.table[:, n("n")].clamp_min(1)).sqrt()
+        assert (diff <= 1e-7 * (f.table[:, n(col)].abs() + sd + 1e-3)).all(), col
+    # Sums of squares are accumulated in float32 per (row, channel) about a per-part shift
+    # (the first value of the part), so the two sides round differently: ~1e-6 relative.
+    var = f.table[:, n("m2")] / f.table[:, n("n")].clamp_min(1)
+    scale2 = var + f.table[:, n("mean")] ** 2  # squared scale of the values
+    for col in ("m2", "row_var"):
+        a, b = m.table[:, n(col)], f.table[:, n(col)]
+        assert ((a - b).abs() <= 1e-5 * b.abs() + 1e-9 * b.abs().max() + 1e-12).all(), col
+    # Row means carry float32 rounding of ~1e-7 of the values' scale, so the spread of
+    # nearly equal row means is compared with an absolute tolerance on that scale.
+    a, b = m.table[:, n("row_mean_m2")], f.table[:, n("row_mean_m2")]
+    rows = f.table[:, n("rows")]
+    assert ((a - b).abs() <= 1e-5 * b.abs() + 1e-8 * rows * scale2 + 1e-12).all()
+    # The spread of within-row variances is a second-order quantity built from float32
+    # per-row sums (whose rounding depends on memory alignment): ~1e-5 relative.
+    a, b = m.table[:, n("row_var_m2")], f.table[:, n("row_var_m2")]
+    rv = f.table[:, n("row_var")]
+    assert ((a - b).abs() <= 1e-4 * b.abs() + 1e-6 * rv * rv + 1e-12).all()
+    assert torch.equal(m.extrema, f.extrema)
+    assert torch.equal(m.hist, f.hist)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    rows=st.integers(1, 40),
+    channels=st.integers(1, 6),
+    inner=st.sampled_from([(), (1,), (3,), (4, 5), (50,), (30, 30)]),
+    split=st.floats(0.0, 1.0),
+    offset=st.sampled_from([0.0, 3.0, -250.0, 1e4]),
+    scale=st.sampled_from([1e-3, 1.0, 40.0]),
+    nonfinite=st.floats(0.0, 0.2),
+    seed=st.integers(0, 2**31 - 1),
+    channel_last=st.booleans(),
+)
+def test_merge_equals_concatenation(rows, channels, inner, split, offset, scale, nonfinite, seed,
+                                    channel_last):
+    """Merging the summaries of two parts equals the summary of their concatenation
+    (Chan et al. 1983 pairwise update); sizes range from 1 to 10^5 values."""
+    g = torch.Generator().manual_seed(seed)
+    shape = (rows, *inner, channels) if channel_last else (rows, channels, *inner)
+    x = torch.randn(*shape, generator=g) * scale + offset
+    if nonfinite > 0:
+        mask = torch.rand(shape, generator=g) < nonfinite
+        choice = torch.randint(0, 3, shape, generator=g)
+        bad = torch.tensor([math.nan, math.inf, -math.inf])[choice]
+        x = torch.where(mask, bad, x)
+    cdim = -1 if channel_last else 1
+    edges = make_edges(offset - 2 * scale, offset + 2 * scale, 10)
+    k = int(round(split * rows))
+    kw = dict(channel_dim=cdim, edges=edges, max_hist_values=None)
+    merged = summarize(x[:k], **kw).merge(summarize(x[k:], **kw))
+    full = summarize(x, **kw)
+    _assert_same_summary(merged, full)
+    # associativity of a three-way split
+    j = (k + rows) // 2
+    three = Summary.merge_all([summarize(x[:k], **kw), summarize(x[k:j], **kw), summarize(x[j:], **kw)])
+    _assert_same_summary(three, full)
