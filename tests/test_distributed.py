@@ -1,0 +1,256 @@
+"""Merging summaries across processes: exactness, cost accounting, real gloo processes.
+
+The multi-process tests start real ``torch.distributed`` processes with the gloo backend
+(``torch.multiprocessing``), on a free loopback port, with a join deadline so a broken
+collective fails the test instead of hanging it.
+"""
+
+from __future__ import annotations
+
+import datetime
+import socket
+import time
+import traceback
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from shiftwatch.distributed import PackLayout, SummaryReducer, merge_tables
+from shiftwatch.divergence import compare
+from shiftwatch.errors import ConfigError
+from shiftwatch.summary import FIELDS, Summary, make_edges, summarize
+
+IX = {k: i for i, k in enumerate(FIELDS)}
+
+
+# ---------------------------------------------------------------- helpers for processes
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _entry(rank: int, fn, world: int, port: int, out_dir: str, args: tuple) -> None:
+    torch.set_num_threads(1)
+    torch.distributed.init_process_group(
+        "gloo",
+        init_method=f"tcp://127.0.0.1:{port}",
+        rank=rank,
+        world_size=world,
+        timeout=datetime.timedelta(seconds=60),
+    )
+    try:
+        fn(rank, world, Path(out_dir), *args)
+    except BaseException:
+        (Path(out_dir) / f"error{rank}.txt").write_text(traceback.format_exc())
+        raise
+    finally:
+        torch.distributed.destroy_process_group()
+
+
+def run_ranks(fn, out_dir: Path, *args, world: int = 2, deadline_s: float = 120.0) -> None:
+    """Run ``fn(rank, world, out_dir, *args)`` in ``world`` real gloo processes; fail
+    (and kill the processes) if they have not finished within ``deadline_s``."""
+    import torch.multiprocessing as mp
+
+    ctx = mp.start_processes(
+        _entry, args=(fn, world, free_port(), str(out_dir), args), nprocs=world,
+        join=False, start_method="spawn",
+    )
+    end = time.monotonic() + deadline_s
+    try:
+        while not ctx.join(timeout=1.0):
+            if time.monotonic() > end:
+                pytest.fail(f"ranks did not finish within {deadline_s} s (hung collective?)")
+    except mp.ProcessRaisedException as exc:
+        errors = "\n".join(p.read_text() for p in sorted(out_dir.glob("error*.txt")))
+        pytest.fail(f"a rank failed:\n{errors or exc}")
+    finally:
+        for p in ctx.processes:
+            if p.is_alive():
+                p.kill()
+
+
+# ---------------------------------------------------------------- data shared by the tests
+def layer_inputs(seed: int, rows: int = 32):
+    """Inputs of three 'layers' of different shapes (conv-like, linear-like, offset)."""
+    g = torch.Generator().manual_seed(seed)
+    return [
+        torch.randn(rows, 3, 5, 5, generator=g, dtype=torch.float64) * 2 + 1,
+        # (rows, 4, 7), not (rows, 7): summarize() of a float64 input with one value per
+        # (row, channel) currently returns zero means (reported to the summary owner)
+        torch.randn(rows, 4, 7, generator=g, dtype=torch.float64).exp(),
+        torch.randn(rows, 2, 64, generator=g, dtype=torch.float64) + 1e4,  # mean 1e4, sd 1
+    ]
+
+
+CHANNEL_DIMS = (1, -1, 1)
+EDGES = [make_edges(-6, 8, 20), make_edges(0, 10, 12), make_edges(1e4 - 4, 1e4 + 4, 16)]
+
+
+def summaries_of(xs, edges=EDGES):
+    return [
+        summarize(x, channel_dim=d, edges=e, max_hist_values=None)
+        for x, d, e in zip(xs, CHANNEL_DIMS, edges, strict=True)
+    ]
+
+
+def _merge_worker(rank: int, world: int, out: Path) -> None:
+    reducer = SummaryReducer()
+    assert reducer.active and reducer.world_size == world and reducer.rank == rank
+    per = 32 // world
+    # current batch: this rank's slice of the global 32-row batch
+    cur = [x[rank * per : (rank + 1) * per] for x in layer_inputs(1)]
+    ref = [x[rank * per : (rank + 1) * per] for x in layer_inputs(2)]
+    # edges: rank 1 starts with wrong ones; broadcast gives everyone rank 0's
+    mine = EDGES if rank == 0 else [e + 1.0 for e in EDGES]
+    edges = [reducer.broadcast(e) for e in mine]
+    merged_cur = reducer.reduce_summaries(summaries_of(cur, edges))
+    merged_ref = reducer.reduce_summaries(summaries_of(ref, edges))
+    stop = reducer.any(rank == world - 1)  # only the last rank wants to stop
+    quiet = reducer.any(False)
+    # a layout that has the same total length but different content must raise everywhere
+    a = summarize(torch.randn(per, 3, 4), channel_dim=1)
+    b = summarize(torch.randn(per, 5, 4), channel_dim=1)
+    swapped = [a, b] if rank == 0 else [b, a]
+    try:
+        reducer.reduce_summaries(swapped)
+        mismatch = "no error"
+    except ConfigError as exc:
+        mismatch = str(exc)
+    torch.save(
+        {
+            "cur": [s.pack() for s in merged_cur],
+            "ref": [s.pack() for s in merged_ref],
+            "edges": edges,
+            "stop": stop,
+            "quiet": quiet,
+            "mismatch": mismatch,
+            "stats": (reducer.stats.collectives, reducer.stats.bytes_sent,
+                      reducer.stats.bytes_received, dict(reducer.stats.by_kind)),
+        },
+        out / f"rank{rank}.pt",
+    )
+
+
+# ---------------------------------------------------------------- single-process tests
+def test_inactive_reducer_returns_inputs_and_communicates_nothing():
+    reducer = SummaryReducer()
+    assert not reducer.active and reducer.rank == 0 and reducer.world_size == 1
+    ss = summaries_of(layer_inputs(0, rows=4))
+    flat = torch.cat([s.pack() for s in ss])
+    assert reducer.reduce(flat, PackLayout.of(ss)) is flat
+    assert reducer.reduce_summaries(ss)[0] is ss[0]
+    assert reducer.broadcast(EDGES[0]) is EDGES[0]
+    assert reducer.any(True) is True and reducer.any(False) is False
+    assert reducer.stats.collectives == 0 and reducer.stats.bytes_sent == 0
+
+
+def test_layout_size_matches_pack():
+    ss = summaries_of(layer_inputs(0, rows=4))
+    layout = PackLayout.of(ss)
+    assert layout.size == sum(s.pack().numel() for s in ss)
+    assert layout.size == sum(Summary.packed_size(s.channels, s.bins) for s in ss)
+    assert PackLayout((3, 5), (0, 0)).fingerprint != PackLayout((5, 3), (0, 0)).fingerprint
+    with pytest.raises(ConfigError, match="hist_sizes"):
+        PackLayout((3,), (0, 0))
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    sizes=st.lists(st.integers(0, 6), min_size=1, max_size=5),
+    offset=st.sampled_from([0.0, 3.0, 1e4]),
+    seed=st.integers(0, 2**16),
+)
+def test_merge_tables_equals_summary_of_concatenation(sizes, offset, seed):
+    """k-way merge of row slices = summary of all rows; moments checked against numpy's
+    mean/var of the raw values (population variance, numpy.var ddof=0)."""
+    g = torch.Generator().manual_seed(seed)
+    x = torch.randn(sum(sizes), 3, 8, generator=g, dtype=torch.float64) + offset
+    if x.shape[0] == 0:
+        return
+    parts = torch.split(x, sizes)
+    tables = torch.stack([summarize(p, channel_dim=1).table for p in parts])
+    merged = merge_tables(tables)
+    whole = summarize(x, channel_dim=1).table
+    torch.testing.assert_close(merged, whole, rtol=1e-9, atol=1e-9)
+    # outside check: numpy on the raw values, per channel (rows 0..C-1) and layer (row C)
+    xn = x.numpy()
+    per_ch = xn.transpose(1, 0, 2).reshape(3, -1)
+    np.testing.assert_allclose(merged[:3, IX["mean"]].numpy(), per_ch.mean(1), rtol=1e-12)
+    np.testing.assert_allclose(
+        merged[:3, IX["m2"]].numpy() / per_ch.shape[1], per_ch.var(1), rtol=1e-8
+    )
+    np.testing.assert_allclose(float(merged[3, IX["n"]]), xn.size)
+    # spread of row means (per sample), used by the noise floors
+    row_means = xn.reshape(xn.shape[0], -1).mean(1)
+    np.testing.assert_allclose(
+        float(merged[3, IX["row_mean_m2"]]),
+        ((row_means - row_means.mean()) ** 2).sum(),
+        rtol=1e-6,
+        atol=1e-18,
+    )
+
+
+def test_gather_merge_keeps_row_mean_spread_at_large_offset():
+    """Mean 1e4, sd 1, 1024 values per row: power sums would lose ~1e-4 of the row-mean
+    M2 (see the module docstring); the Chan merge keeps it to ~1e-9."""
+    g = torch.Generator().manual_seed(5)
+    x = torch.randn(32, 4, 1024, generator=g, dtype=torch.float64) + 1e4
+    tables = torch.stack([summarize(p, channel_dim=1).table for p in torch.chunk(x, 8)])
+    merged = merge_tables(tables)
+    row_means = x.reshape(32, -1).mean(1).numpy()
+    expect = ((row_means - row_means.mean()) ** 2).sum()
+    assert abs(float(merged[-1, IX["row_mean_m2"]]) / expect - 1) < 1e-7
+
+
+# ---------------------------------------------------------------- real processes
+@pytest.mark.timeout(180)
+def test_two_gloo_ranks_merge_exactly_like_one_process(tmp_path):
+    run_ranks(_merge_worker, tmp_path)
+    r0, r1 = (torch.load(tmp_path / f"rank{r}.pt") for r in (0, 1))
+
+    # edges: everyone ends with rank 0's
+    for e0, e1, e in zip(r0["edges"], r1["edges"], EDGES, strict=True):
+        assert torch.equal(e0, e) and torch.equal(e1, e)
+
+    # both ranks hold bit-identical merged summaries
+    for a, b in zip(r0["cur"] + r0["ref"], r1["cur"] + r1["ref"], strict=True):
+        assert torch.equal(a, b)
+
+    # ... equal to the summaries one process computes from all 32 rows
+    one_cur, one_ref = summaries_of(layer_inputs(1)), summaries_of(layer_inputs(2))
+    for flat, s in zip(r0["cur"], one_cur, strict=True):
+        m = Summary.unpack(flat, s.channels, s.edges)
+        torch.testing.assert_close(m.table, s.table, rtol=1e-10, atol=1e-9)
+        assert torch.equal(m.extrema, s.extrema) and torch.equal(m.hist, s.hist)
+
+    # ... and so are the metrics, to 1e-5 relative
+    for fc, fr, sc, sr in zip(r0["cur"], r0["ref"], one_cur, one_ref, strict=True):
+        mc = Summary.unpack(fc, sc.channels, sc.edges)
+        mr = Summary.unpack(fr, sr.channels, sr.edges)
+        two, one = compare(mc, mr), compare(sc, sr)
+        for name in one:
+            assert float(two[name].value) == pytest.approx(float(one[name].value), rel=1e-5)
+            assert float(two[name].noise) == pytest.approx(float(one[name].noise), rel=1e-5)
+
+    # a stop wanted by one rank reaches all; none wanted, none taken
+    assert r0["stop"] and r1["stop"] and not r0["quiet"] and not r1["quiet"]
+    # a different layout of equal length raises on every rank
+    assert "different summary layouts" in r0["mismatch"]
+    assert "different summary layouts" in r1["mismatch"]
+
+    # cost accounting: per reduce one all_gather of P + 1 float64 values
+    size = PackLayout.of(one_cur).size
+    mism = PackLayout((3, 5), (0, 0)).size
+    collectives, sent, received, kinds = r0["stats"]
+    assert kinds == {"broadcast": 3, "all_gather": 3, "all_reduce": 2}
+    edge_bytes = sum(e.numel() * 8 for e in EDGES)
+    assert sent == edge_bytes + 2 * 8 * (size + 1) + 8 * (mism + 1) + 2 * 4
+    assert received == edge_bytes + 2 * 2 * 8 * (size + 1) + 2 * 8 * (mism + 1) + 2 * 4
+    assert collectives == 8
+
