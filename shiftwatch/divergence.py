@@ -77,14 +77,17 @@ __all__ = [
     "HIST_METRICS",
     "METRICS",
     "MOMENT_METRICS",
+    "PSI_BANDS",
     "SMOOTHING",
     "Score",
     "channel_view",
     "compare",
     "compare_channels",
     "design_effect",
+    "gauss_kl",
     "hist_scores",
     "moment_scores",
+    "psi_band",
 ]
 
 MOMENT_METRICS: tuple[str, ...] = ("mean_shift", "log_std_ratio", "gauss_kl")
@@ -337,6 +340,18 @@ def _w1(p_c, p_r, edges, ext_c, ext_r, deff):
     eff = eff[..., 0] if eff.ndim else eff
     noise = _E_ABS_Z * bridge * np.sqrt(eff * (1 / n_c[..., 0] + 1 / n_r[..., 0]))
     return value, noise
+
+
+#: PSI bands used in credit-risk model monitoring: below 0.1 "stable", 0.1-0.25 "moderate",
+#: above 0.25 "major" shift.  Common practice, no source; they ignore sample size, so read
+#: PSI together with its noise floor.
+PSI_BANDS: tuple[float, float] = (0.1, 0.25)
+
+
+def psi_band(value: float) -> str:
+    """Label a PSI value with the common-practice bands (see :data:`PSI_BANDS`)."""
+    lo, hi = PSI_BANDS
+    return "stable" if value < lo else "moderate" if value < hi else "major"
 
 
 # ---------------------------------------------------------------- Summary-level API

@@ -425,7 +425,8 @@ def summarize(
     d.nan_to_num_(nan=0.0, posinf=0.0, neginf=0.0)  # non-finite -> 0: no effect on sums
 
     def rsum(t: Tensor) -> Tensor:
-        return t.sum(dim=reduce_dims) if reduce_dims else t
+        # a copy when nothing is reduced: t is the scratch buffer, reused below
+        return t.sum(dim=reduce_dims) if reduce_dims else t.clone()
 
     s1 = rsum(d).to(f64)
     s2 = rsum(d.square_()).to(f64)  # in place: d is not needed afterwards

@@ -26,9 +26,10 @@ def channel_last(x: np.ndarray, cdim: int) -> np.ndarray:
     ("shape", "cdim"),
     [((8, 3, 5, 7), 1), ((16, 10), -1), ((4, 6, 5), -1), ((2, 4, 3, 3, 3), 1), ((1, 5), 1)],
 )
-def test_moments_match_numpy_float64(shape, cdim):
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_moments_match_numpy_float64(shape, cdim, dtype):
     g = torch.Generator().manual_seed(0)
-    x = torch.randn(*shape, generator=g) * 3 + 2
+    x = torch.randn(*shape, generator=g, dtype=dtype) * 3 + 2
     s = summarize(x, channel_dim=cdim)
     ref = channel_last(x.double().numpy(), cdim)  # numpy float64 is the reference
     np.testing.assert_allclose(s.mean(layer=False).numpy(), ref.mean(axis=(0, 1)), rtol=1e-6)
