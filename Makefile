@@ -5,7 +5,7 @@ VENV := .venv
 VPY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint venv clean
+.PHONY: demo test lint venv clean browser
 
 $(STAMP): pyproject.toml
 	test -x $(VPY) || $(PY) -m venv $(VENV)
@@ -20,7 +20,13 @@ venv: $(STAMP)
 demo: $(STAMP)
 	$(VPY) examples/sensor_drift_demo.py
 
-test: $(STAMP)
+# Browser tests render pages in Debian's headless Chromium; install it when missing (root).
+browser:
+	@command -v chromium >/dev/null 2>&1 || { \
+	  echo "installing Debian chromium for the browser tests"; \
+	  (apt-get update -qq && apt-get install -y -qq chromium) >/dev/null; }
+
+test: $(STAMP) browser
 	$(VPY) -m pytest -q tests
 
 lint: $(STAMP)

@@ -12,8 +12,8 @@ from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning, Unsupported
 from .summary import FIELDS, Summary, make_edges, summarize
 
 __all__ = [
-    "FIELDS",
     "ConfigError",
+    "FIELDS",
     "ShiftAlertError",
     "ShiftWatchWarning",
     "Summary",

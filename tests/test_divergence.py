@@ -140,7 +140,9 @@ def _null_ratios(n, reps, rows_of=1, seed=0):
     return {k: float(np.median(v)) for k, v in out.items()}
 
 
-@pytest.mark.parametrize(("n", "reps"), [(16, 300), (128, 200), (1024, 150), (8192, 80), (65536, 40)])
+@pytest.mark.parametrize(
+    ("n", "reps"), [(16, 300), (128, 200), (1024, 150), (8192, 80), (65536, 40)]
+)
 def test_noise_floor_is_calibrated_on_iid_data(n, reps):
     """Two iid samples of one distribution: value / noise has a median near 1 for every
     metric and sample size (criterion from the issue: median within [0.5, 2])."""
@@ -217,7 +219,9 @@ def test_moment_metrics_are_affine_invariant(n, loc, scale, a, b, seed):
 
 
 @settings(max_examples=40, deadline=None)
-@given(n=st.integers(1, 300), m=st.integers(1, 300), shift=finite_floats, seed=st.integers(0, 2**31))
+@given(
+    n=st.integers(1, 300), m=st.integers(1, 300), shift=finite_floats, seed=st.integers(0, 2**31)
+)
 def test_divergences_are_nonnegative_zero_on_identity_and_js_bounded(n, m, shift, seed):
     g = torch.Generator().manual_seed(seed)
     x = _summ(torch.randn(n, 1, generator=g) + shift / 10)

@@ -38,7 +38,9 @@ def test_moments_match_numpy_float64(shape, cdim, dtype):
     np.testing.assert_allclose(float(s.var()), ref.var(), rtol=1e-5)
     np.testing.assert_allclose(float(s.var(unbiased=True)), ref.var(ddof=1), rtol=1e-5)
     assert float(s.count) == x.numel()
-    assert float(s.min) == pytest.approx(float(x.min())) and float(s.max) == pytest.approx(float(x.max()))
+    assert float(s.min) == pytest.approx(float(x.min())) and float(s.max) == pytest.approx(
+        float(x.max())
+    )
     # row statistics: the spread of per-sample means (numpy reference)
     row_means = ref.mean(axis=(1, 2))
     t = s.table[-1]
@@ -106,8 +108,15 @@ def test_histogram_subsample_is_capped():
 
 @pytest.mark.parametrize(
     "x",
-    [torch.zeros(0, 3, 4), torch.zeros(0, 5), torch.full((1, 3, 4, 4), 7.0), torch.full((9, 2), -2.0),
-     torch.randn(1, 4), torch.tensor(3.0), torch.randn(5)],
+    [
+        torch.zeros(0, 3, 4),
+        torch.zeros(0, 5),
+        torch.full((1, 3, 4, 4), 7.0),
+        torch.full((9, 2), -2.0),
+        torch.randn(1, 4),
+        torch.tensor(3.0),
+        torch.randn(5),
+    ],
     ids=["empty4d", "empty2d", "one-constant", "constant", "batch-of-one", "scalar", "vector"],
 )
 def test_degenerate_inputs_give_defined_results(x):
@@ -125,7 +134,9 @@ def test_degenerate_inputs_give_defined_results(x):
             assert np.isfinite(score.value).all() and np.isfinite(score.ratio).all()
 
 
-@pytest.mark.parametrize("dtype", [torch.int64, torch.int32, torch.bool, torch.uint8, torch.complex64])
+@pytest.mark.parametrize(
+    "dtype", [torch.int64, torch.int32, torch.bool, torch.uint8, torch.complex64]
+)
 def test_non_float_inputs_are_rejected(dtype):
     x = torch.zeros(4, 3, dtype=dtype)
     with pytest.raises(UnsupportedInputError, match="dtype"):
@@ -220,8 +231,9 @@ def _assert_same_summary(m: Summary, f: Summary):
     seed=st.integers(0, 2**31 - 1),
     channel_last=st.booleans(),
 )
-def test_merge_equals_concatenation(rows, channels, inner, split, offset, scale, nonfinite, seed,
-                                    channel_last):
+def test_merge_equals_concatenation(
+    rows, channels, inner, split, offset, scale, nonfinite, seed, channel_last
+):
     """Merging the summaries of two parts equals the summary of their concatenation
     (Chan et al. 1983 pairwise update); sizes range from 1 to 10^5 values."""
     g = torch.Generator().manual_seed(seed)
@@ -241,5 +253,7 @@ def test_merge_equals_concatenation(rows, channels, inner, split, offset, scale,
     _assert_same_summary(merged, full)
     # associativity of a three-way split
     j = (k + rows) // 2
-    three = Summary.merge_all([summarize(x[:k], **kw), summarize(x[k:j], **kw), summarize(x[j:], **kw)])
+    three = Summary.merge_all(
+        [summarize(x[:k], **kw), summarize(x[k:j], **kw), summarize(x[j:], **kw)]
+    )
     _assert_same_summary(three, full)
