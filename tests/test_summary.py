@@ -77,8 +77,8 @@ def test_nonfinite_values_are_excluded_and_counted():
     assert float(s.nonfinite) == 12
     assert s.field("nonfinite", layer=False).tolist() == [1, 1, 0, 10]
     assert float(s.count) == x.numel() - 12
-    assert float(s.min) == pytest.approx(np.nanmin(finite))
-    assert float(s.max) == pytest.approx(np.nanmax(finite))
+    assert float(s.min) == pytest.approx(np.nanmin(finite), rel=1e-6)
+    assert float(s.max) == pytest.approx(np.nanmax(finite), rel=1e-6)
     assert float(s.hist.sum()) == x.numel() - 12
     assert torch.isfinite(s.table).all()
 
@@ -215,7 +215,10 @@ def _assert_same_summary(m: Summary, f: Summary):
     a, b = m.table[:, n("row_var_m2")], f.table[:, n("row_var_m2")]
     rv = f.table[:, n("row_var")]
     assert ((a - b).abs() <= 1e-4 * b.abs() + 1e-6 * rv * rv + 1e-12).all()
-    assert torch.equal(m.extrema, f.extrema)
+    # min/max are recovered as min(x - shift) + shift: exact up to float32 rounding of
+    # x - shift, and the two sides use different shifts
+    spread = (f.extrema[1] - f.extrema[0]).abs() + f.extrema.abs()
+    assert torch.allclose(m.extrema, f.extrema, rtol=0, atol=float(2.4e-7 * spread.max()) + 1e-30)
     assert torch.equal(m.hist, f.hist)
 
 
