@@ -34,7 +34,8 @@ Cost per sampled step and phase, with ``P`` = total packed length (for each laye
 ``9 * (channels + 1) + 2`` values, plus ``bins + 2`` once histograms are on; see
 :meth:`Summary.packed_size`) and ``W`` = world size:
 
-* collectives: **1** ``all_gather`` (edges: one ``broadcast`` when a reference is set);
+* collectives: **1** ``all_gather`` (plus, once per run and layout, a 16-byte
+  ``all_gather`` comparing the ranks' layouts; edges: one ``broadcast`` when they are fixed);
 * bytes: each rank contributes ``8 * (P + 1)`` bytes and receives ``8 * W * (P + 1)``
   (a ring all-gather moves ``8 * (W - 1) * (P + 1)`` bytes in and out of each rank;
   a ring all-reduce of the same tensor would move ``2 * 8 * (W - 1) / W * (P + 1)``, so
@@ -59,6 +60,7 @@ import hashlib
 import struct
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import torch
 from torch import Tensor
@@ -230,6 +232,7 @@ class SummaryReducer:
         self.group = group
         self.stats = CommStats()
         self._index: dict[tuple[PackLayout, torch.device], _Index] = {}
+        self._seen: set[PackLayout] = set()
 
     @property
     def active(self) -> bool:
@@ -244,15 +247,30 @@ class SummaryReducer:
     def world_size(self) -> int:
         return rank_and_world(self.group)[1]
 
-    def reduce(self, flat: Tensor, layout: PackLayout) -> Tensor:
+    def __call__(self, flat: Tensor, layout: Any) -> Tensor:
+        """``reducer(flat, layout)``: the form :class:`~shiftwatch.monitor.ShiftMonitor`
+        calls; ``layout`` is a :class:`PackLayout` or any object with ``channels`` and
+        ``hist_sizes`` (the monitor's :class:`~shiftwatch.compare.Layout`)."""
+        return self.reduce(flat, layout)
+
+    def reduce(self, flat: Tensor, layout: Any) -> Tensor:
         """Merge ``flat`` (this rank's packed summaries, float64, 1-d) with every other
         rank's; returns a tensor of the same layout on the same device holding the
         summaries of all ranks' data together.  Without an active group, returns
-        ``flat`` itself."""
+        ``flat`` itself.
+
+        The first time a layout is used, the ranks also compare (size, fingerprint) in one
+        tiny all_gather, so ranks that learned different layouts get a
+        :class:`~shiftwatch.errors.ConfigError` instead of a collective that aborts."""
         if not self.active:
             return flat
         import torch.distributed as dist
 
+        if not isinstance(layout, PackLayout):
+            layout = PackLayout(tuple(layout.channels), tuple(layout.hist_sizes))
+        if layout not in self._seen:
+            self._handshake(layout, flat.device)
+            self._seen.add(layout)
         if flat.dtype != torch.float64 or flat.ndim != 1 or flat.numel() != layout.size:
             raise ConfigError(
                 f"'flat' must be a 1-d float64 tensor of {layout.size} values for this "
@@ -276,6 +294,27 @@ class SummaryReducer:
                 "and monitor options"
             )
         return self._merge(rows[:, 1:], layout).to(flat.device)
+
+    def _handshake(self, layout: PackLayout, device: torch.device) -> None:
+        import torch.distributed as dist
+
+        world = dist.get_world_size(self.group)
+        device = _comm_device(device, self.group)
+        mine = torch.tensor([float(layout.size), layout.fingerprint], dtype=torch.float64,
+                            device=device)
+        every = torch.empty(2 * world, dtype=torch.float64, device=device)
+        gather = getattr(dist, "all_gather_single", None) or dist.all_gather_into_tensor
+        gather(every, mine, group=self.group)
+        self.stats._add("handshake", 16, 16 * world)
+        pairs = every.view(world, 2).tolist()
+        if any(p != pairs[0] for p in pairs):
+            sizes = [int(p[0]) for p in pairs]
+            raise ConfigError(
+                "ranks packed different summary layouts (packed sizes per rank: "
+                f"{sizes}); every rank must summarise the same layers with the same "
+                "channels at the same sampled steps: check that all ranks run the same "
+                "model and monitor options, and that every watched layer runs on every rank"
+            )
 
     def _merge(self, rows: Tensor, layout: PackLayout) -> Tensor:
         key = (layout, rows.device)

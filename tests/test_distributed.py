@@ -81,9 +81,7 @@ def layer_inputs(seed: int, rows: int = 32):
     g = torch.Generator().manual_seed(seed)
     return [
         torch.randn(rows, 3, 5, 5, generator=g, dtype=torch.float64) * 2 + 1,
-        # (rows, 4, 7), not (rows, 7): summarize() of a float64 input with one value per
-        # (row, channel) currently returns zero means (reported to the summary owner)
-        torch.randn(rows, 4, 7, generator=g, dtype=torch.float64).exp(),
+        torch.randn(rows, 7, generator=g, dtype=torch.float64).exp(),
         torch.randn(rows, 2, 64, generator=g, dtype=torch.float64) + 1e4,  # mean 1e4, sd 1
     ]
 
@@ -113,15 +111,26 @@ def _merge_worker(rank: int, world: int, out: Path) -> None:
     merged_ref = reducer.reduce_summaries(summaries_of(ref, edges))
     stop = reducer.any(rank == world - 1)  # only the last rank wants to stop
     quiet = reducer.any(False)
-    # a layout that has the same total length but different content must raise everywhere
+    # layouts with the same total length but different content must raise on every rank:
+    # first seen (caught by the layout handshake), then both known but used at the same
+    # call by different ranks (caught by the fingerprint that travels with the data)
     a = summarize(torch.randn(per, 3, 4), channel_dim=1)
     b = summarize(torch.randn(per, 5, 4), channel_dim=1)
-    swapped = [a, b] if rank == 0 else [b, a]
+    errors = []
+    for ab in ([a, b], [b, a]) if rank == 0 else ([b, a], [a, b]):
+        try:
+            reducer.reduce_summaries(ab)
+            errors.append("no error")
+        except ConfigError as exc:
+            errors.append(str(exc))
+    reducer.reduce_summaries([a, b])  # both ranks: layout (3, 5) is now known everywhere
+    reducer.reduce_summaries([b, a])  # ... and so is (5, 3)
     try:
-        reducer.reduce_summaries(swapped)
-        mismatch = "no error"
+        reducer.reduce_summaries([a, b] if rank == 0 else [b, a])
+        errors.append("no error")
     except ConfigError as exc:
-        mismatch = str(exc)
+        errors.append(str(exc))
+    mismatch = errors
     torch.save(
         {
             "cur": [s.pack() for s in merged_cur],
@@ -240,17 +249,19 @@ def test_two_gloo_ranks_merge_exactly_like_one_process(tmp_path):
 
     # a stop wanted by one rank reaches all; none wanted, none taken
     assert r0["stop"] and r1["stop"] and not r0["quiet"] and not r1["quiet"]
-    # a different layout of equal length raises on every rank
-    assert "different summary layouts" in r0["mismatch"]
-    assert "different summary layouts" in r1["mismatch"]
+    # differing layouts raise on every rank: twice at the handshake, then in-band
+    for r in (r0, r1):
+        assert [("packed sizes per rank" in m) for m in r["mismatch"]] == [True, True, False]
+        assert "fingerprints" in r["mismatch"][2]
 
-    # cost accounting: per reduce one all_gather of P + 1 float64 values
+    # cost accounting: per reduce one all_gather of P + 1 float64 values, and one 16-byte
+    # handshake the first time each layout is used
     size = PackLayout.of(one_cur).size
     mism = PackLayout((3, 5), (0, 0)).size
     collectives, sent, received, kinds = r0["stats"]
-    assert kinds == {"broadcast": 3, "all_gather": 3, "all_reduce": 2}
+    assert kinds == {"broadcast": 3, "handshake": 5, "all_gather": 5, "all_reduce": 2}
     edge_bytes = sum(e.numel() * 8 for e in EDGES)
-    assert sent == edge_bytes + 2 * 8 * (size + 1) + 8 * (mism + 1) + 2 * 4
-    assert received == edge_bytes + 2 * 2 * 8 * (size + 1) + 2 * 8 * (mism + 1) + 2 * 4
-    assert collectives == 8
-
+    gathers = 2 * (size + 1) + 3 * (mism + 1)
+    assert sent == edge_bytes + 8 * gathers + 5 * 16 + 2 * 4
+    assert received == edge_bytes + 2 * 8 * gathers + 2 * 5 * 16 + 2 * 4
+    assert collectives == 15
