@@ -16,6 +16,7 @@ from torch import nn
 
 from ..errors import ConfigError
 from .analysis import (
+    KL_TOLERANCE,
     BatchSizeStats,
     SpreadStats,
     alternative_group_counts,
@@ -33,14 +34,6 @@ __all__ = ["DEFAULT_BATCH_SIZES", "KL_TOLERANCE", "probe_normalization"]
 
 #: Batch sizes evaluated by default.
 DEFAULT_BATCH_SIZES: tuple[int, ...] = (2, 4, 8, 16, 32)
-
-#: Default tolerance, nats per channel, on the KL caused by normalizing with batch
-#: statistics instead of population statistics.  Common practice, no source: BatchNorm is
-#: commonly used without trouble at batch size 32, and on independent Gaussian values
-#: (one value per sample and channel) batch 32 gives an expected KL of about 0.037 and
-#: batch 16 about 0.09 (computed from the chi-square law of the batch variance); 0.05
-#: therefore accepts what batch 32 does on such data and rejects what batch 16 does.
-KL_TOLERANCE = 0.05
 
 
 def _check_options(batch_sizes: Sequence[int], draws: int, tolerance: float, quantile: float,

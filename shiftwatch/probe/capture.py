@@ -42,7 +42,7 @@ def find_norm_layers(model: nn.Module) -> list[tuple[str, nn.Module]]:
     if not layers:
         raise ConfigError(
             f"'model' ({type(model).__name__}) has no normalization layers ({_KNOWN}); the "
-            "probe measures those layers only, so there is nothing to report"
+            "probe measures those layers only: pass a model that contains one"
         )
     return layers
 

@@ -27,14 +27,11 @@ import torch
 from torch import nn
 
 from ..errors import ConfigError
-from .analysis import RunningStatsCheck, running_stats_check
+from .analysis import KL_TOLERANCE, RunningStatsCheck, running_stats_check
 from .capture import Forward, capture_inputs, find_norm_layers, reiterable
 from .moments import norm_kind
 
 __all__ = ["RecalibrationResult", "recalibrate"]
-
-#: Default tolerance for calling running statistics stale (see ``probe.KL_TOLERANCE``).
-_TOLERANCE = 0.05
 
 
 @dataclass(frozen=True)
@@ -80,7 +77,7 @@ def recalibrate(
     in_place: bool = False,
     forward: Forward | None = None,
     max_samples: int | None = None,
-    tolerance: float = _TOLERANCE,
+    tolerance: float = KL_TOLERANCE,
     progress: bool | None = None,
 ) -> RecalibrationResult:
     """Set every BatchNorm layer's running statistics to the population statistics of its
