@@ -1,0 +1,514 @@
+"""Rules: when a measured shift becomes an alert.
+
+A :class:`Rule` names a metric, what it is compared against (the previous sample or the
+reference), a threshold (a multiple of the noise floor, or a raw metric value), the layers
+it applies to, patience (consecutive samples over the threshold before it fires),
+cooldown (samples it stays quiet after firing), severity (``warn`` or ``fail``) and the
+phase (``train``, ``val`` or ``any``) whose samples it judges.
+
+Rules come from Python (:class:`Rule`, :func:`default_rules`) or a TOML file
+(:func:`load_rules`, stdlib :mod:`tomllib`)::
+
+    use_defaults = true          # keep the built-in rules (default) and add these
+
+    [[rule]]
+    name = "fc-input-drift"
+    metric = "w1"                # mean_shift, log_std_ratio, gauss_kl, hist_kl, js, psi,
+                                 # w1, nonfinite, collapse
+    against = "reference"        # or "previous"
+    threshold = 8.0
+    units = "noise"              # threshold as a multiple of the noise floor, or "raw"
+    layers = ["fc*"]             # name globs; "<entry>" = the data-facing layers
+    patience = 2
+    cooldown = 10
+    severity = "warn"
+
+:class:`Judge` holds the patience/cooldown counters and turns one step's
+:class:`Observation` (all layers' scores, vectorised) into :class:`Alert` records.  It
+decides only; what happens next (record, stop, raise) is the monitor's job.
+
+What a firing rule means: the metric crossed the threshold for ``patience`` samples in a
+row.  With ``units = "noise"`` a value of 5 means "five times what sampling noise alone
+would typically give at these batch sizes" -- an approximation (see
+:mod:`shiftwatch.divergence`), not a p-value, and it says nothing about whether the shift
+hurts the model.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import math
+import os
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import asdict, dataclass, field, fields, replace
+from typing import Any
+
+import numpy as np
+
+from .capture import no_match_error
+from .divergence import METRICS, MOMENT_METRICS
+from .errors import ConfigError
+
+__all__ = [
+    "ACTIONS",
+    "ENTRY",
+    "RULE_METRICS",
+    "Alert",
+    "Judge",
+    "Observation",
+    "Rule",
+    "default_rules",
+    "load_rules",
+    "rules_from_toml",
+]
+
+#: Layer token selecting the entry (data-facing) layers.
+ENTRY = "<entry>"
+#: Metrics a rule can use: the shift metrics plus two built-in checks.
+RULE_METRICS: tuple[str, ...] = (*METRICS, "nonfinite", "collapse")
+_CHECKS = ("nonfinite", "collapse")
+AGAINST = ("previous", "reference")
+UNITS = ("noise", "raw")
+VIEWS = ("layer", "channels")
+SEVERITIES = ("warn", "fail")
+PHASES = ("train", "val", "any")
+ACTIONS = ("record", "stop", "raise")
+
+
+def _choice(where: str, key: str, value: Any, allowed: Sequence[str]) -> str:
+    if value not in allowed:
+        raise ConfigError(
+            f"{where}: '{key}' must be one of {', '.join(repr(a) for a in allowed)} "
+            f"(got {value!r}); fix the rule"
+        )
+    return value
+
+
+def _int(where: str, key: str, value: Any, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < low:
+        raise ConfigError(f"{where}: '{key}' must be an integer >= {low} (got {value!r})")
+    return value
+
+
+@dataclass(frozen=True)
+class Rule:
+    """One alerting rule (all options keyword-only except ``metric``).
+
+    Attributes:
+        metric: one of :data:`RULE_METRICS`.  ``nonfinite`` fires on the count of NaN/inf
+            values (``value >= threshold``); ``collapse`` on the layer's standard deviation
+            (fires when ``value <= threshold``, input units); the others on a shift metric.
+        threshold: number compared with the value (``>=``, or ``<=`` for ``collapse``).
+        against: ``"previous"`` (the last sample of the same phase) or ``"reference"``;
+            ``None`` for ``nonfinite``/``collapse``, which look at the sample alone.
+        units: ``"noise"``: the value is the metric divided by its noise floor;
+            ``"raw"``: the metric in its own units.  The checks always use ``"raw"``.
+        view: ``"layer"`` (layer-wide) or ``"channels"`` (the worst channel; moment
+            metrics only).
+        layers: layer-name globs; :data:`ENTRY` (``"<entry>"``) stands for the entry
+            layers (those fed by the model's input).
+        patience: consecutive samples over the threshold before the rule fires (>= 1).
+        cooldown: samples after firing during which the same layer does not fire again.
+        severity: ``"warn"`` (reported) or ``"fail"`` (also triggers ``on_alert``).
+        phase: ``"train"``, ``"val"`` or ``"any"``.
+        name: shown in alerts; default ``"<metric>-vs-<against>"``.
+    """
+
+    metric: str
+    threshold: float = field(kw_only=True)
+    against: str | None = field(default="reference", kw_only=True)
+    units: str = field(default="noise", kw_only=True)
+    view: str = field(default="layer", kw_only=True)
+    layers: tuple[str, ...] = field(default=("*",), kw_only=True)
+    patience: int = field(default=1, kw_only=True)
+    cooldown: int = field(default=0, kw_only=True)
+    severity: str = field(default="warn", kw_only=True)
+    phase: str = field(default="train", kw_only=True)
+    name: str = field(default="", kw_only=True)
+
+    def __post_init__(self) -> None:
+        where = f"rule {self.name or self.metric!r}"
+        _choice(where, "metric", self.metric, RULE_METRICS)
+        t = self.threshold
+        if isinstance(t, bool) or not isinstance(t, (int, float)) or not math.isfinite(t):
+            raise ConfigError(f"{where}: 'threshold' must be a finite number (got {t!r})")
+        object.__setattr__(self, "threshold", float(t))
+        if self.metric in _CHECKS:
+            object.__setattr__(self, "against", None)
+            object.__setattr__(self, "units", "raw")
+            if self.view != "layer":
+                raise ConfigError(f"{where}: 'view' must be 'layer' for metric {self.metric!r}")
+        else:
+            _choice(where, "against", self.against, AGAINST)
+            _choice(where, "units", self.units, UNITS)
+            _choice(where, "view", self.view, VIEWS)
+            if self.view == "channels" and self.metric not in MOMENT_METRICS:
+                raise ConfigError(
+                    f"{where}: view 'channels' needs a moment metric "
+                    f"({', '.join(MOMENT_METRICS)}; got {self.metric!r}); histograms are "
+                    "layer-wide, use view='layer'"
+                )
+        layers = (self.layers,) if isinstance(self.layers, str) else tuple(self.layers)
+        if not layers or not all(isinstance(p, str) and p for p in layers):
+            raise ConfigError(
+                f"{where}: 'layers' must be a glob or a list of non-empty globs "
+                f"(got {self.layers!r}); e.g. ['*'] or ['{ENTRY}']"
+            )
+        object.__setattr__(self, "layers", layers)
+        _int(where, "patience", self.patience, 1)
+        _int(where, "cooldown", self.cooldown, 0)
+        _choice(where, "severity", self.severity, SEVERITIES)
+        _choice(where, "phase", self.phase, PHASES)
+        if not isinstance(self.name, str):
+            raise ConfigError(f"{where}: 'name' must be a string (got {self.name!r})")
+        if not self.name:
+            tail = f"-vs-{self.against}" if self.against else ""
+            object.__setattr__(self, "name", f"{self.metric}{tail}")
+
+    @property
+    def fires_below(self) -> bool:
+        """True when the rule fires on values *at or below* the threshold."""
+        return self.metric == "collapse"
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe representation (the keys of a TOML ``[[rule]]`` table)."""
+        d = asdict(self)
+        d["layers"] = list(self.layers)
+        return d
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any], *, where: str = "rule") -> Rule:
+        """Build a rule from a mapping, naming unknown keys and the allowed ones."""
+        if not isinstance(data, Mapping):
+            raise ConfigError(f"{where} must be a table of keys (got {type(data).__name__})")
+        allowed = [f.name for f in fields(cls)]
+        unknown = [k for k in data if k not in allowed]
+        if unknown:
+            raise ConfigError(
+                f"{where}: unknown key {unknown[0]!r}; allowed keys: {', '.join(allowed)}"
+            )
+        if "metric" not in data or "threshold" not in data:
+            missing = "metric" if "metric" not in data else "threshold"
+            raise ConfigError(f"{where}: '{missing}' is required; add {missing} = ...")
+        kwargs = dict(data)
+        if kwargs.get("metric") in _CHECKS:
+            kwargs.pop("against", None)
+        name = kwargs.get("name")
+        label = f"{where} ({name!r})" if isinstance(name, str) and name else where
+        try:
+            return cls(**kwargs)
+        except ConfigError as exc:
+            msg = str(exc)
+            raise ConfigError(f"{label}: {msg.split(': ', 1)[1]}" if ": " in msg else msg) from None
+
+
+def default_rules() -> list[Rule]:
+    """The built-in rules (see the README for why these thresholds).
+
+    * ``nonfinite`` (fail): any NaN/inf in a watched input, any phase.
+    * ``collapsed-input`` (fail): a layer input whose standard deviation is at most 1e-6
+      (input units) in two consecutive samples.
+    * ``entry-shift`` / ``entry-scale`` (fail): the mean or the spread of an *entry* layer's
+      input (the data as it enters the model) moved by at least 6 noise floors from the
+      reference or from the previous sample.  Entry inputs do not drift by training, so
+      a shift there means the data changed.
+    * ``sudden-shift`` / ``sudden-scale`` (warn): any layer's input mean or spread jumped
+      by at least 12 noise floors between two successive samples.  Inner layers drift as
+      weights learn; that slow drift shows in TensorBoard and the event log
+      (``vs_reference``) but no default rule fails on it.
+    """
+    entry = (ENTRY,)
+    return [
+        Rule("nonfinite", threshold=1, severity="fail", phase="any", name="nonfinite"),
+        Rule("collapse", threshold=1e-6, severity="fail", patience=2, name="collapsed-input"),
+        Rule("mean_shift", against="reference", threshold=6.0, layers=entry, severity="fail",
+             cooldown=10, name="entry-shift"),
+        Rule("log_std_ratio", against="reference", threshold=6.0, layers=entry,
+             severity="fail", cooldown=10, name="entry-scale"),
+        Rule("mean_shift", against="previous", threshold=6.0, layers=entry, severity="fail",
+             cooldown=10, name="entry-jump"),
+        Rule("log_std_ratio", against="previous", threshold=6.0, layers=entry,
+             severity="fail", cooldown=10, name="entry-scale-jump"),
+        Rule("mean_shift", against="previous", threshold=12.0, severity="warn", cooldown=10,
+             name="sudden-shift"),
+        Rule("log_std_ratio", against="previous", threshold=12.0, severity="warn",
+             cooldown=10, name="sudden-scale"),
+    ]
+
+
+# ----------------------------------------------------------------------------- TOML
+def rules_from_toml(text: str, *, source: str = "<string>") -> list[Rule]:
+    """Parse rules from TOML text (format in the module docstring)."""
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        try:
+            import tomli as tomllib  # type: ignore[no-redef]
+        except ModuleNotFoundError as exc:
+            raise ImportError(
+                "reading TOML rules on Python 3.10 needs tomli: pip install tomli"
+            ) from exc
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{source}: not valid TOML ({exc}); fix the syntax") from None
+    allowed = ("use_defaults", "rule")
+    unknown = [k for k in data if k not in allowed]
+    if unknown:
+        raise ConfigError(
+            f"{source}: unknown top-level key {unknown[0]!r}; allowed keys: "
+            f"{', '.join(allowed)} (rules go in [[rule]] tables)"
+        )
+    use_defaults = data.get("use_defaults", True)
+    if not isinstance(use_defaults, bool):
+        raise ConfigError(
+            f"{source}: 'use_defaults' must be true or false (got {use_defaults!r})"
+        )
+    tables = data.get("rule", [])
+    if not isinstance(tables, list):
+        raise ConfigError(f"{source}: 'rule' must be an array of tables: write [[rule]]")
+    rules = [Rule.from_dict(t, where=f"{source}: rule {i + 1}") for i, t in enumerate(tables)]
+    out = (default_rules() if use_defaults else []) + rules
+    if not out:
+        raise ConfigError(
+            f"{source}: no rules: add [[rule]] tables or set use_defaults = true"
+        )
+    return out
+
+
+def load_rules(path: str | os.PathLike) -> list[Rule]:
+    """Read rules from a TOML file; errors name the file, the rule and the key."""
+    try:
+        with open(path, encoding="utf-8") as f:
+            text = f.read()
+    except OSError as exc:
+        raise ConfigError(
+            f"'rules' file '{os.fspath(path)}' cannot be read ({exc.strerror or exc}); "
+            "pass the path of a TOML rules file"
+        ) from None
+    return rules_from_toml(text, source=os.fspath(path))
+
+
+# ----------------------------------------------------------------------------- judging
+@dataclass(frozen=True)
+class Alert:
+    """One rule firing on one layer at one sampled step.
+
+    ``value`` is what was compared with ``threshold`` (a multiple of ``noise`` when
+    ``units == "noise"``); ``raw`` is the metric in its own units; ``channel`` is the
+    worst channel for ``view == "channels"``.  ``action`` says what the monitor did.
+    """
+
+    step: int
+    phase: str
+    layer: str
+    rule: str
+    metric: str
+    against: str | None
+    view: str
+    value: float
+    threshold: float
+    units: str
+    raw: float
+    noise: float | None
+    severity: str
+    action: str = "record"
+    channel: int | None = None
+
+    @property
+    def message(self) -> str:
+        unit = " x noise" if self.units == "noise" else ""
+        vs = f" vs {self.against}" if self.against else ""
+        ch = f" (channel {self.channel})" if self.channel is not None else ""
+        op = "<=" if self.metric == "collapse" else ">="
+        return (
+            f"step {self.step} [{self.phase}] {self.layer}{ch}: {self.metric}{vs} = "
+            f"{self.value:.3g}{unit} {op} {self.threshold:g} ({self.severity}, "
+            f"rule {self.rule})"
+        )
+
+    def to_record(self) -> dict[str, Any]:
+        """The event-log record (``kind: "alert"``, docs/eventlog.md)."""
+        rec: dict[str, Any] = {"kind": "alert", **asdict(self), "message": self.message}
+        if self.channel is None:
+            del rec["channel"]
+        return rec
+
+
+@dataclass
+class Observation:
+    """One sampled step of one phase, all layers at once (arrays over layers ``L``).
+
+    ``value``/``noise``/``ratio`` map ``"previous"``/``"reference"`` to ``(len(METRICS), L)``
+    float arrays (NaN where not available); ``channel`` maps the same keys to a dict of
+    ``(len(MOMENT_METRICS), L)`` arrays: ``max_ratio``, ``worst`` (channel with the largest
+    ratio), ``worst_value``, ``worst_noise``, ``max_value``, ``argmax_value``.
+    ``nonfinite`` and ``std`` are ``(L,)``; ``present`` marks layers that saw data.
+    """
+
+    step: int
+    phase: str
+    layers: tuple[str, ...]
+    present: np.ndarray
+    nonfinite: np.ndarray
+    std: np.ndarray | None = None
+    value: dict[str, np.ndarray] = field(default_factory=dict)
+    noise: dict[str, np.ndarray] = field(default_factory=dict)
+    ratio: dict[str, np.ndarray] = field(default_factory=dict)
+    channel: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
+
+
+_M_INDEX = {m: i for i, m in enumerate(METRICS)}
+_MM_INDEX = {m: i for i, m in enumerate(MOMENT_METRICS)}
+
+
+class Judge:
+    """Applies rules to observations and keeps their patience/cooldown counters.
+
+    Call :meth:`bind` with the watched layer names (and the entry layers once known)
+    before :meth:`evaluate`.  ``evaluate`` returns alerts and changes nothing but the
+    counters; state round-trips through :meth:`state_dict` as plain Python lists.
+    """
+
+    def __init__(self, rules: Iterable[Rule]) -> None:
+        self.rules: tuple[Rule, ...] = tuple(rules)
+        for r in self.rules:
+            if not isinstance(r, Rule):
+                raise ConfigError(
+                    f"'rules' must hold Rule objects (got {type(r).__name__}); build them "
+                    "with shiftwatch.Rule(...) or load a TOML file with load_rules()"
+                )
+        names = [r.name for r in self.rules]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise ConfigError(
+                f"rule names must be unique (got {dup[0]!r} more than once); give each "
+                "rule its own 'name' (rule counters are saved by name)"
+            )
+        self.layers: tuple[str, ...] = ()
+        self._masks = np.zeros((len(self.rules), 0), bool)
+        self._streak = np.zeros((len(self.rules), 0), np.int64)
+        self._last = np.zeros((len(self.rules), 0), np.int64)
+        self._seen = np.zeros(len(self.rules), np.int64)
+
+    def bind(self, layers: Sequence[str], entry: Sequence[str] | None = None) -> None:
+        """Resolve each rule's layer patterns against ``layers``.
+
+        Raises:
+            ConfigError: a pattern (other than ``"<entry>"``) matches no watched layer.
+        """
+        layers = tuple(layers)
+        entry_set = set(entry or ())
+        masks = np.zeros((len(self.rules), len(layers)), bool)
+        for r, rule in enumerate(self.rules):
+            for pattern in rule.layers:
+                if pattern == ENTRY:
+                    hit = np.array([n in entry_set for n in layers], bool)
+                else:
+                    hit = np.array([fnmatch.fnmatchcase(n, pattern) for n in layers], bool)
+                    if layers and not hit.any():
+                        raise no_match_error(pattern, "layers", layers, "watched layer",
+                                             where=f"rule {rule.name!r}: ")
+                masks[r] |= hit
+        if layers != self.layers:
+            old = {n: i for i, n in enumerate(self.layers)}
+            streak = np.zeros((len(self.rules), len(layers)), np.int64)
+            last = np.full((len(self.rules), len(layers)), -(2**40), np.int64)
+            for j, n in enumerate(layers):
+                if n in old:
+                    streak[:, j] = self._streak[:, old[n]]
+                    last[:, j] = self._last[:, old[n]]
+            self._streak, self._last = streak, last
+        self.layers, self._masks = layers, masks
+
+    def _inputs(self, rule: Rule, obs: Observation):
+        """``(x, available, channel, raw, noise)`` arrays over layers for one rule."""
+        n = len(obs.layers)
+        none = np.full(n, np.nan)
+        if rule.metric == "nonfinite":
+            return obs.nonfinite, obs.present, None, obs.nonfinite, none
+        if rule.metric == "collapse":
+            if obs.std is None:
+                return none, np.zeros(n, bool), None, none, none
+            return obs.std, obs.present, None, obs.std, none
+        against = rule.against
+        if against not in obs.value:
+            return none, np.zeros(n, bool), None, none, none
+        if rule.view == "layer":
+            m = _M_INDEX[rule.metric]
+            value, noise = obs.value[against][m], obs.noise[against][m]
+            x = obs.ratio[against][m] if rule.units == "noise" else value
+            return x, np.isfinite(x), None, value, noise
+        ch, m = obs.channel[against], _MM_INDEX[rule.metric]
+        if rule.units == "noise":
+            x = ch["max_ratio"][m]
+            return x, np.isfinite(x), ch["worst"][m], ch["worst_value"][m], ch["worst_noise"][m]
+        x = ch["max_value"][m]
+        return x, np.isfinite(x), ch["argmax_value"][m], x, none
+
+    def evaluate(self, obs: Observation) -> list[Alert]:
+        """Alerts fired by ``obs`` (counters advance; nothing else changes)."""
+        if tuple(obs.layers) != self.layers:
+            raise ValueError("observation layers differ from the bound layers; call bind()")
+        alerts: list[Alert] = []
+        for r, rule in enumerate(self.rules):
+            if rule.phase not in (obs.phase, "any"):
+                continue
+            x, avail, chan, raw, noise = self._inputs(rule, obs)
+            use = self._masks[r] & avail
+            if not use.any():
+                continue
+            self._seen[r] += 1
+            with np.errstate(invalid="ignore"):
+                over = (x <= rule.threshold) if rule.fires_below else (x >= rule.threshold)
+            over &= use
+            streak = self._streak[r]
+            streak[:] = np.where(use, np.where(over, streak + 1, 0), streak)
+            cool = self._seen[r] - self._last[r] > rule.cooldown
+            fire = over & (streak >= rule.patience) & cool
+            if not fire.any():
+                continue
+            self._last[r][fire] = self._seen[r]
+            for j in np.flatnonzero(fire).tolist():
+                nz = float(noise[j])
+                alerts.append(Alert(
+                    step=int(obs.step), phase=obs.phase, layer=obs.layers[j], rule=rule.name,
+                    metric=rule.metric, against=rule.against, view=rule.view,
+                    value=float(x[j]), threshold=rule.threshold, units=rule.units,
+                    raw=float(raw[j]), noise=nz if math.isfinite(nz) else None,
+                    severity=rule.severity,
+                    channel=None if chan is None else int(chan[j]),
+                ))
+        return alerts
+
+    # ------------------------------------------------------------------ state
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "rules": [r.name for r in self.rules],
+            "layers": list(self.layers),
+            "streak": self._streak.tolist(),
+            "last": self._last.tolist(),
+            "seen": self._seen.tolist(),
+        }
+
+    def load_state_dict(self, state: Mapping[str, Any]) -> None:
+        """Restore counters; rules and layers are matched by name (new ones start at 0)."""
+        names = list(state.get("rules", []))
+        layers = list(state.get("layers", []))
+        lj = {n: j for j, n in enumerate(layers)}
+        streak, last = state.get("streak", []), state.get("last", [])
+        seen = state.get("seen", [])
+        for r, rule in enumerate(self.rules):
+            if rule.name not in names:
+                continue
+            i = names.index(rule.name)
+            self._seen[r] = int(seen[i])
+            for j, n in enumerate(self.layers):
+                if n in lj:
+                    self._streak[r, j] = int(streak[i][lj[n]])
+                    self._last[r, j] = int(last[i][lj[n]])
+
+
+def with_action(alert: Alert, action: str) -> Alert:
+    """A copy of ``alert`` recording what the monitor did with it."""
+    return replace(alert, action=_choice("alert", "action", action, ACTIONS))
