@@ -7,14 +7,20 @@ against the reference (``--against``) in one phase gives, per run:
   ratio to noise beside it;
 * *peak*: the largest raw value, with the noise floor at that step.
 
-A verdict is given only where the difference exceeds noise:
-``|A - B| > margin * sqrt(noise_A**2 + noise_B**2)`` with ``margin = 2`` (``--margin``),
-where the noise floors are the median noise (typical) or the noise at the peak step (peak).
-A noise floor is the value expected from sampling alone at *one* sampled step, so this asks
-for a difference that would stand out on a single step, not merely a statistically
-detectable one over many steps (common practice for a materiality margin, no source).  Two
-runs that both sit at noise level never get a verdict, whatever their batch sizes.
-Layers with fewer than ``--min-samples`` samples in either run get none either.
+A verdict is given only where the difference exceeds noise, which takes two conditions:
+
+1. ``|A - B| > margin * sqrt(noise_A**2 + noise_B**2)`` with ``margin = 2`` (``--margin``),
+   the noise floors being the median noise (typical) or the noise at the peak step (peak).
+   A noise floor is the value expected from sampling alone at *one* sampled step, so this
+   asks for a difference that would stand out on a single step, not merely one detectable
+   over many steps (common practice for a materiality margin, no source);
+2. the larger of the two is itself a shift: its ratio to noise is above ``margin`` for the
+   typical value (with no shift the median ratio is about 0.85) and above ``3 * margin``
+   for the peak (the largest of thousands of noise-only samples reaches 4-5 noise floors).
+
+So two runs that both sit at noise level never get a verdict, even when one has larger
+batches and hence smaller raw values.  Layers with fewer than ``--min-samples`` samples in
+either run get none either.
 
 Typical and peak verdicts are combined: agreement (or one undecided) names that run;
 disagreement reads "mixed".  The overall line counts layers; it is not weighted.
@@ -38,7 +44,7 @@ from .common import (
     num,
     table,
 )
-from .logread import LogError
+from .logread import LogError, find_log
 from .runread import RunData, finite
 
 __all__ = ["compare_runs", "register", "render_text"]
@@ -71,13 +77,25 @@ def _side(run: RunData, li: int, mi: int, t: dict[str, Any]) -> dict[str, Any]:
             "peak": finite(t["vpeak_value"][li, mi]),
             "peak_noise": finite(t["vpeak_noise"][li, mi]),
             "peak_step": int(t["vpeak_step"][li, mi]),
+            "peak_value_ratio": _ratio(t["vpeak_value"][li, mi], t["vpeak_noise"][li, mi]),
             "peak_ratio": finite(t["peak_ratio"][li, mi])}
 
 
-def _decide(a: float | None, na: float | None, b: float | None, nb: float | None,
-            margin: float) -> str | None:
-    """'A' or 'B' (the smaller value) when |a - b| exceeds the noise margin, else None."""
+def _ratio(value: float, noise: float) -> float | None:
+    return finite(value / noise) if noise and math.isfinite(noise) and noise > 0 else None
+
+
+def _decide(a: float | None, na: float | None, ra: float | None, b: float | None,
+            nb: float | None, rb: float | None, margin: float, floor: float) -> str | None:
+    """'A' or 'B' (the smaller value) when the difference exceeds noise (module docstring).
+
+    ``a``/``b`` raw values, ``na``/``nb`` their noise floors, ``ra``/``rb`` their ratios to
+    noise; ``floor``: ratio the larger value must exceed to count as a shift at all.
+    """
     if None in (a, na, b, nb):
+        return None
+    worse_ratio = ra if a > b else rb
+    if worse_ratio is None or worse_ratio <= floor:
         return None
     if abs(a - b) > margin * math.hypot(na, nb):
         return "A" if a < b else "B"
@@ -102,9 +120,11 @@ def compare_runs(a: RunData, b: RunData, *, metric: str = "mean_shift",
                       and sb["samples"] >= min_samples)
         typ = peak = None
         if enough:
-            typ = _decide(sa["typical"], sa["typical_noise"], sb["typical"],
-                          sb["typical_noise"], margin)
-            peak = _decide(sa["peak"], sa["peak_noise"], sb["peak"], sb["peak_noise"], margin)
+            typ = _decide(sa["typical"], sa["typical_noise"], sa["typical_ratio"],
+                          sb["typical"], sb["typical_noise"], sb["typical_ratio"],
+                          margin, margin)
+            peak = _decide(sa["peak"], sa["peak_noise"], sa["peak_value_ratio"], sb["peak"],
+                           sb["peak_noise"], sb["peak_value_ratio"], margin, 3 * margin)
         if not enough:
             verdict, steadier = "too few samples", None
         elif typ and peak and typ != peak:
@@ -156,11 +176,12 @@ def render_text(c: dict[str, Any]) -> str:
                    f"{i['first_step']}..{i['last_step']}{state})")
     out.append(f"metric {v['metric']} vs {v['against']}, {v['phase']} phase. typical = median "
                "raw value (median x noise), peak = largest raw value (x noise at that step).")
-    out.append(f"a verdict needs |A - B| > {num(v['margin'])} x sqrt(noise_A^2 + noise_B^2) "
-               f"and {v['min_samples']}+ samples in each run.")
+    out.append(f"a verdict needs |A - B| > {num(v['margin'])} x sqrt(noise_A^2 + noise_B^2), "
+               f"the larger above {num(v['margin'])} x noise (typical) or "
+               f"{num(3 * v['margin'])} x noise (peak), and {v['min_samples']}+ samples each.")
     rows = [[r["layer"], _cell(r["A"], "typical", "typical_ratio"),
-             _cell(r["A"], "peak", "peak_ratio"), _cell(r["B"], "typical", "typical_ratio"),
-             _cell(r["B"], "peak", "peak_ratio"), r["verdict"]] for r in c["layers"]]
+             _cell(r["A"], "peak", "peak_value_ratio"), _cell(r["B"], "typical", "typical_ratio"),
+             _cell(r["B"], "peak", "peak_value_ratio"), r["verdict"]] for r in c["layers"]]
     out.append("")
     out.append(table(["layer", "A typical", "A peak", "B typical", "B peak", "verdict"], rows,
                      right=[False, True, True, True, True, False]))
@@ -186,9 +207,13 @@ def run(args: argparse.Namespace) -> int:
     if args.min_samples < 1:
         return fail("compare", f"'--min-samples' must be at least 1 (got {args.min_samples})")
     try:
+        if args.output:
+            from .report_cmd import check_output
+
+            check_output(args.output, protect=(find_log(args.run_a), find_log(args.run_b)))
         a = load(args.run_a, args)
         b = load(args.run_b, args)
-    except LogError as exc:
+    except (LogError, OSError) as exc:
         return fail("compare", str(exc))
     c = compare_runs(a, b, metric=args.metric, against=args.against, phase=args.phase,
                      margin=args.margin, min_samples=args.min_samples)

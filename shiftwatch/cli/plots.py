@@ -103,8 +103,7 @@ def heatmap(run: RunData, *, phase: str, against: str, metric: str, fmt: str = "
                      layout="constrained")
         ax = fig.add_subplot()
         levels = list(LEVELS[:-1]) + [1e12]
-        cmap = mpl.colormaps["YlOrRd"].resampled(len(levels) - 1).copy()
-        cmap.set_bad("#e4e7ea")
+        cmap = mpl.colormaps["YlOrRd"].resampled(len(levels) - 1).with_extremes(bad="#e4e7ea")
         im = ax.imshow(np.ma.masked_invalid(z), aspect="auto", interpolation="nearest",
                        cmap=cmap, norm=BoundaryNorm(levels, len(levels) - 1),
                        extent=(edges[0], edges[-1], L, 0))
@@ -220,7 +219,8 @@ def layer_curves(run: RunData, li: int, *, phase: str, fmt: str = "png") -> tupl
     raw_keys = _raw_panels(run, li, phase, raw_rules, alerts)
     with mpl.rc_context(_rc()):
         n_panels = 1 + len(raw_keys)
-        fig = Figure(figsize=(7.2, 1.5 + 1.6 * n_panels), dpi=90, layout="constrained")
+        height = 1.5 + 1.6 * n_panels
+        fig = Figure(figsize=(7.2, height), dpi=90)  # fixed layout: 2x faster than constrained
         axes = fig.subplots(n_panels, 1, sharex=True, squeeze=False)[:, 0]
         ax = axes[0]
         drawn = False
@@ -294,10 +294,13 @@ def layer_curves(run: RunData, li: int, *, phase: str, fmt: str = "png") -> tupl
                 if ll not in labels:
                     handles.append(hh)
                     labels.append(ll)
+        rows = math.ceil(len(handles) / 2)
         if handles:
-            fig.legend(handles, labels, loc="outside lower center", ncol=2, fontsize=6.5,
-                       frameon=False)
+            fig.legend(handles, labels, loc="lower center", ncol=2, fontsize=6.5,
+                       frameon=False, bbox_to_anchor=(0.5, 0.0))
         axes[-1].set_xlabel(f"step (each point: extreme of a {grid.width}-step bin)")
+        fig.subplots_adjust(left=0.11, right=0.98, top=1 - 0.32 / height, hspace=0.25,
+                            bottom=(0.5 + 0.13 * rows) / height)
         return _save(fig, fmt)
 
 

@@ -25,7 +25,7 @@ from typing import Any
 
 from .aggregate import METRICS
 from .common import EXIT_OK, add_view_options, add_workers_option, alert_line, fail, num
-from .logread import LogError
+from .logread import LogError, find_log
 from .plots import PlotUnavailable, compare_figure, heatmap, layer_curves
 from .render import Html, esc, image, page, section, table
 from .runread import DEFAULT_BINS, RunData, read_run
@@ -190,9 +190,11 @@ def build_report(run: RunData, *, phase: str = "train", against: str = "referenc
     return page(title, subtitle, body)
 
 
-def write_output(text: str, output: str | os.PathLike[str], *,
-                 protect: tuple[Path, ...] = ()) -> Path:
-    """Write ``text`` to ``output`` atomically; refuse to clobber a log or a non-HTML file."""
+def check_output(output: str | os.PathLike[str], *, protect: tuple[Path, ...] = ()) -> Path:
+    """Refuse an ``-o`` that is a directory, the log being read, or a file that is not HTML.
+
+    Raises OSError with the message for the user; called before any work is done.
+    """
     out = Path(output)
     if out.is_dir():
         raise OSError(f"'-o' must be a file path (got the directory {str(out)!r}): add a "
@@ -209,6 +211,13 @@ def write_output(text: str, output: str | os.PathLike[str], *,
     if not out.parent.exists():
         raise OSError(f"the folder of '-o' does not exist ({str(out.parent)!r}): create it "
                       "first")
+    return out
+
+
+def write_output(text: str, output: str | os.PathLike[str], *,
+                 protect: tuple[Path, ...] = ()) -> Path:
+    """Write ``text`` to ``output`` atomically (after :func:`check_output`)."""
+    out = check_output(output, protect=protect)
     if out.exists():
         mode = out.stat().st_mode & 0o777
     else:
@@ -237,7 +246,7 @@ def write_compare_html(c: dict[str, Any], output: str, *, fmt: str = "png") -> P
         for side in ("A", "B"):
             d = r[side] or {}
             cells += [num(d.get("typical")), num(d.get("typical_ratio")), num(d.get("peak")),
-                      num(d.get("peak_ratio"))]
+                      num(d.get("peak_value_ratio"))]
         rows.append(cells + [r["verdict"]])
     t = c["tally"]
     body = [
@@ -265,8 +274,9 @@ def run(args: argparse.Namespace) -> int:
     if args.metric != "any" and args.metric not in METRICS:
         return fail("report", f"'--metric' must be 'any' or one of {', '.join(METRICS)}")
     try:
+        check_output(args.output, protect=(find_log(args.logdir),))
         data = read_run(args.logdir, bins=args.bins, workers=args.workers)
-    except LogError as exc:
+    except (LogError, OSError) as exc:
         return fail("report", str(exc))
     try:
         text = build_report(data, phase=args.phase, against=args.against, metric=args.metric,

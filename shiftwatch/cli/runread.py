@@ -3,9 +3,9 @@
 ``read_run`` looks at the file size once and reads up to there (a run still writing keeps
 appending; those lines are left for the next call).  It reads the head and the tail to
 learn the step range, lays a step grid over it, and folds every record into fixed-size
-accumulators (:mod:`shiftwatch.cli.aggregate`).  A log larger than ``parallel_bytes`` is
-cut into byte ranges read by separate processes and merged in file order; the result is
-identical to a single pass.
+accumulators (:mod:`shiftwatch.cli.aggregate`, :mod:`shiftwatch.cli.runacc`).  A log
+larger than ``parallel_bytes`` is cut into byte ranges read by separate processes and
+merged in file order; the result is identical to a single pass.
 """
 
 from __future__ import annotations
@@ -20,8 +20,9 @@ from typing import Any
 
 import numpy as np
 
-from .aggregate import AGAINST, METRICS, Grid, PhaseAcc, RunAcc, quantile, wrap_error
+from .aggregate import AGAINST, METRICS, Grid, PhaseAcc, quantile
 from .logread import LogError, decoder, find_log, iter_records, line_number, read_header, step_range
+from .runacc import RunAcc, wrap_error
 
 __all__ = ["DEFAULT_BINS", "RunData", "read_run"]
 
