@@ -512,7 +512,7 @@ class ShiftMonitor:
         for a in decision.alerts:
             self.alerts.append(a)
             logger.log(logging.ERROR if a.severity == "fail" else logging.WARNING,
-                       "shiftwatch: %s", a.message)
+                       "%s", a.message)
         if decision.stop and not self.should_stop:
             self.should_stop = True
             first = next(a for a in decision.alerts if a.severity == "fail")

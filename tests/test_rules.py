@@ -84,7 +84,7 @@ def test_toml_rules_load_and_validate(tmp_path):
     ("text", "match"),
     [
         ('[[rule]]\nmetric = "js"\nthreshold = 4\ntreshold = 5\n',
-         r"rule 1: unknown key 'treshold'; allowed keys: metric, threshold, against"),
+         r"rule 1: unknown key 'treshold'; allowed keys: metric, threshold, min_raw, against"),
         ('[[rule]]\nmetric = "js"\nthreshold = 4\nagainst = "past"\n',
          r"rule 1: 'against' must be one of 'previous', 'reference' \(got 'past'\)"),
         ('[[rule]]\nname = "x"\nmetric = "js"\nthreshold = "high"\n',
@@ -141,6 +141,16 @@ def test_channel_view_reports_worst_channel():
     assert "channel 2" in a.message
 
 
+def test_min_raw_keeps_tiny_but_clear_shifts_quiet():
+    j = judge(Rule("mean_shift", threshold=5, min_raw=0.75, name="big"))
+    # ratios 9 and 6: raw values (ratio * 0.1) 0.9 and 0.6; only the first is large enough
+    assert [a.layer for a in j.evaluate(obs(0, [9, 6, 0]))] == ["conv1"]
+    with pytest.raises(ConfigError, match="'min_raw' must be a finite number >= 0"):
+        Rule("js", threshold=1, min_raw=-1)
+    with pytest.raises(ConfigError, match="'min_raw' does not apply to metric 'nonfinite'"):
+        Rule("nonfinite", threshold=1, min_raw=1)
+
+
 def test_unavailable_metric_never_fires():
     j = judge(Rule("mean_shift", threshold=5, against="previous", name="p"))
     assert j.evaluate(obs(0, [9, 9, 9], against="reference")) == []
@@ -165,7 +175,8 @@ def test_alert_record_has_documented_keys():
         assert key in rec
     assert rec["kind"] == "alert" and rec["value"] == 8 and rec["threshold"] == 5
     assert rec["message"] == (
-        "step 12 [train] conv1: mean_shift vs reference = 8 x noise >= 5 (fail, rule r)")
+        "step 12 [train] conv1: mean_shift vs reference = 8 x noise (raw 0.8) >= 5 "
+        "(fail, rule r)")
 
 
 def test_judge_state_round_trip():
