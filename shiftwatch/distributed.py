@@ -359,6 +359,20 @@ class SummaryReducer:
         self.stats._add("broadcast", nbytes, nbytes)
         return out.to(tensor.device)
 
+    def sum(self, tensor: Tensor) -> Tensor:
+        """Element-wise sum over ranks (one ``all_reduce(SUM)``; exact for integer
+        tensors such as non-finite counts).  Returns a new tensor on ``tensor``'s device;
+        ``tensor`` itself without an active group."""
+        if not self.active:
+            return tensor
+        import torch.distributed as dist
+
+        out = tensor.detach().to(_comm_device(tensor.device, self.group), copy=True).contiguous()
+        dist.all_reduce(out, op=dist.ReduceOp.SUM, group=self.group)
+        nbytes = out.numel() * out.element_size()
+        self.stats._add("all_reduce", nbytes, nbytes)
+        return out.to(tensor.device)
+
     def any(self, flag: bool) -> bool:
         """True on every rank when ``flag`` is true on any rank (one ``all_reduce(MAX)``
         of one value); ``flag`` itself without an active group.  Use it for decisions a

@@ -21,6 +21,13 @@ seam for merging across processes; identity unless a ``reducer`` is given), move
 host in one transfer, compared with the previous sample of the phase and with the
 reference, judged by the rules and written to the event log, TensorBoard and ``logging``.
 
+Under ``torch.distributed`` (issue 4; :mod:`shiftwatch.distributed`): when no ``reducer`` is
+given and a process group of more than one rank is initialised, every sampled step merges
+all ranks' summaries of both phases with one collective before any metric is computed, so
+all ranks compute the same numbers and take the same decisions; histogram edges come from
+rank 0; only global rank 0 writes files and log lines.  Every rank must call ``step()``
+with the same step numbers (and ``observe()`` together).
+
 The reference pools the first ``reference_steps`` sampled training steps (exact merge), or
 comes from ``reference=path``.  Histogram edges of each layer are fixed from its first
 sample (``mean +- 4 std`` clipped to ``[min, max]``), so the first sample has no histogram.
@@ -43,6 +50,7 @@ from torch import Tensor, nn
 from . import __version__
 from .capture import PHASES, Capture
 from .compare import Layout, compare_all, edges_from_sample, layer_stats, merge_flats, observation
+from .distributed import PackLayout, SummaryReducer, rank_and_world
 from .divergence import METRICS, MOMENT_METRICS
 from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning
 from .reference import Reference, load_reference_file, save_reference_file
@@ -113,7 +121,9 @@ class ShiftMonitor:
             TensorBoard is installed; ``True``: require it; ``False``: never; or a
             ``SummaryWriter`` to share.
         reducer: ``reducer(flat, layout) -> flat`` merging the packed summaries across
-            processes before the host transfer (see :meth:`_reduce`); ``None``: identity.
+            processes before the host transfer (see :meth:`_reduce`); ``None``: a
+            :class:`~shiftwatch.distributed.SummaryReducer`, which merges across the ranks
+            of ``torch.distributed`` when it is initialised and is the identity otherwise.
 
     Raises:
         ConfigError: a bad option (named in the message), a pattern that matches no
@@ -161,7 +171,10 @@ class ShiftMonitor:
             )
         if reducer is not None and not callable(reducer):
             raise ConfigError(f"'reducer' must be callable or None (got {reducer!r})")
-        self.reducer = reducer
+        # distributed (issue 4): the default reducer merges across ranks when a process
+        # group is initialised and costs one is_initialized() check otherwise
+        self.reducer = SummaryReducer() if reducer is None else reducer
+        self._rank = rank_and_world()[0]  # only rank 0 writes files and log lines
         if rules is None:
             rule_list = default_rules()
         elif isinstance(rules, (str, os.PathLike)):
@@ -191,8 +204,10 @@ class ShiftMonitor:
             }
             self._init_state(reference, ref_layers)
             self.log_dir = None if log_dir is None else Path(log_dir)
-            self._events = None if log_dir is None else _open_event_log(self.log_dir)
-            self._tb = self._open_tensorboard(tensorboard)
+            writes = self._rank == 0  # distributed (issue 4): other ranks write nothing
+            self._events = None if log_dir is None or not writes else _open_event_log(
+                self.log_dir)
+            self._tb = self._open_tensorboard(tensorboard) if writes else None
         except BaseException:
             self._capture.close()
             raise
@@ -355,7 +370,10 @@ class ShiftMonitor:
         s = self._step if global_step is None else _pos_int("global_step", global_step, 0)
         self._step = s + 1
         try:
-            new = self.observe(s) if self._capture.phases() else []
+            # distributed (issue 4): observe() is a collective, so every rank calls it at
+            # every sampled step, whatever this rank captured
+            due = self.is_sampled(s) if self._all_ranks() else self._capture.phases()
+            new = self.observe(s) if due else []
             if self._capture.check_finite:
                 new += self._check_finite(s)
         finally:
@@ -368,12 +386,45 @@ class ShiftMonitor:
         yourself after :meth:`arm` (e.g. at the end of a validation loop)."""
         self._check_open()
         step = self._step if step is None else _pos_int("step", step, 0)
+        if self._all_ranks():
+            return self._observe_all_ranks(step)
         new: list[Alert] = []
         for phase in self._capture.phases():
             summaries = self._capture.take(phase)
             if self._layout is None:
                 self._learn_layout(summaries)  # may drop taps (and their summaries)
             flat = self._to_host(self._reduce(self._pack(summaries)))
+            obs, record = self._analyse(phase, step, flat)
+            decision = self.judge(obs)
+            self._emit(phase, step, flat, record, decision)
+            new += self._apply(decision)
+        return new
+
+    # ------------------------------------------------------------------ distributed (issue 4)
+    def _all_ranks(self) -> bool:
+        """Whether summaries are merged across torch.distributed ranks (default reducer,
+        initialised process group of more than one rank)."""
+        return isinstance(self.reducer, SummaryReducer) and self.reducer.active
+
+    def _observe_all_ranks(self, step: int) -> list[Alert]:
+        """:meth:`observe` across ranks: both phases are packed (a phase this rank did not
+        see as placeholders) and merged in one collective, so every rank makes the same
+        call whatever it captured; a phase no rank saw is skipped on every rank."""
+        if self._layout is None:
+            self._learn_layout([None] * len(self._capture.taps))  # may drop taps
+        lay = self._layout
+        taken = {p: self._capture.take(p) for p in PHASES}
+        device = next((s.device for p in PHASES for s in taken[p] if s is not None),
+                      torch.device("cpu"))
+        both = torch.cat([lay.pack(taken[p], device) for p in PHASES])
+        twice = PackLayout(tuple(lay.channels) * len(PHASES), lay.hist_sizes * len(PHASES))
+        host = self._to_host(self.reducer(both, twice))
+        new: list[Alert] = []
+        for k, phase in enumerate(PHASES):
+            flat = host[k * lay.size:(k + 1) * lay.size].copy()
+            stats = layer_stats(lay.split(flat), lay)
+            if not (stats["count"].any() or stats["nonfinite"].any()):
+                continue
             obs, record = self._analyse(phase, step, flat)
             decision = self.judge(obs)
             self._emit(phase, step, flat, record, decision)
@@ -412,16 +463,21 @@ class ShiftMonitor:
 
     def _check_finite(self, step: int) -> list[Alert]:
         counts = self._capture.take_finite()
-        if self._layout is None or all(c is None for c in counts):
+        everywhere = self._all_ranks()  # distributed (issue 4): a collective on every rank
+        if self._layout is None or (all(c is None for c in counts) and not everywhere):
             return []
-        dev = next(c.device for c in counts if c is not None)
+        dev = next((c.device for c in counts if c is not None), torch.device("cpu"))
         zero = torch.zeros((), dtype=torch.int64, device=dev)
-        vals = torch.stack([zero if c is None else c.to(dev) for c in counts]).tolist()  # 1 sync
+        table = torch.stack([torch.stack([zero if c is None else c.to(dev) for c in counts]),
+                             torch.tensor([c is not None for c in counts], device=dev).long()])
+        if everywhere:  # rank-local counts would let ranks decide differently
+            table = self.reducer.sum(table)
+        vals, seen = table.tolist()  # 1 sync
         if not any(vals):
             return []
         nf = np.asarray(vals, float)
         obs = Observation(step=step, phase="train", layers=self._layout.names,
-                          present=np.array([c is not None for c in counts]), nonfinite=nf)
+                          present=np.array(seen) > 0, nonfinite=nf)
         decision = self.judge(obs)
         for a in decision.alerts:
             self._write(a.to_record())
@@ -461,6 +517,8 @@ class ShiftMonitor:
             need = np.isnan(self._ranges[:, 0]) & (stats["count"] > 0)
             if need.any():
                 lo, hi = edges_from_sample(stats)
+                if self._all_ranks():  # distributed (issue 4): every rank uses rank 0's edges
+                    lo, hi = self.reducer.broadcast(torch.from_numpy(np.stack([lo, hi]))).numpy()
                 for i in np.flatnonzero(need).tolist():
                     self._set_edges(i, float(lo[i]), float(hi[i]))
         return obs, record
@@ -511,8 +569,9 @@ class ShiftMonitor:
         """Effect of a decision: record, log, set :attr:`should_stop`, raise."""
         for a in decision.alerts:
             self.alerts.append(a)
-            logger.log(logging.ERROR if a.severity == "fail" else logging.WARNING,
-                       "%s", a.message)
+            if self._rank == 0:  # distributed (issue 4): one log line per alert, not per rank
+                logger.log(logging.ERROR if a.severity == "fail" else logging.WARNING,
+                           "%s", a.message)
         if decision.stop and not self.should_stop:
             self.should_stop = True
             first = next(a for a in decision.alerts if a.severity == "fail")

@@ -8,6 +8,7 @@ collective fails the test instead of hanging it.
 from __future__ import annotations
 
 import datetime
+import json
 import socket
 import time
 import traceback
@@ -19,6 +20,7 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from shiftwatch import ShiftMonitor
 from shiftwatch.distributed import PackLayout, SummaryReducer, merge_tables
 from shiftwatch.divergence import compare
 from shiftwatch.errors import ConfigError
@@ -267,3 +269,115 @@ def test_two_gloo_ranks_merge_exactly_like_one_process(tmp_path):
     assert sent == edge_bytes + 8 * gathers + 5 * 16 + 2 * 4
     assert received == edge_bytes + 2 * 8 * gathers + 2 * 5 * 16 + 2 * 4
     assert collectives == 15
+
+
+# ---------------------------------------------------------------- ShiftMonitor under DDP
+GLOBAL_BATCH, SHIFT_STEP, MAX_STEPS = 32, 8, 16
+
+
+def monitor_model() -> torch.nn.Module:
+    # no BatchNorm: under DDP it normalises each rank's half batch, so the layers after
+    # it would legitimately see other inputs than with the whole batch in one process
+    torch.manual_seed(0)
+    net = torch.nn.Sequential(torch.nn.Linear(8, 16), torch.nn.ReLU(), torch.nn.LayerNorm(16),
+                              torch.nn.Linear(16, 1))
+    return net.double()  # float64: DDP's gradient averaging then matches to ~1e-16
+
+
+def monitor_batch(step: int):
+    """The global batch of a step; from SHIFT_STEP on the inputs move by 2 std."""
+    g = torch.Generator().manual_seed(1000 + step)
+    x = torch.randn(GLOBAL_BATCH, 8, generator=g, dtype=torch.float64)
+    if step >= SHIFT_STEP:
+        x += 2.0
+    return x, x[:, :2].sum(1, keepdim=True)
+
+
+def train_monitored(log_dir: Path, rows: slice, wrap=None) -> tuple[ShiftMonitor, int]:
+    model = monitor_model()
+    net = model if wrap is None else wrap(model)
+    opt = torch.optim.SGD(net.parameters(), lr=0.05)
+    monitor = ShiftMonitor(model, log_dir, every_n_steps=2, reference_steps=3,
+                           on_alert="stop", tensorboard=False)
+    step = -1
+    for step in range(MAX_STEPS):
+        x, y = monitor_batch(step)
+        loss = torch.nn.functional.mse_loss(net(x[rows]), y[rows])
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+        monitor.step()
+        if monitor.should_stop:
+            break
+    return monitor, step
+
+
+def _monitor_worker(rank: int, world: int, out: Path) -> None:
+    half = GLOBAL_BATCH // world
+    monitor, stopped = train_monitored(
+        out / f"rank{rank}", slice(rank * half, (rank + 1) * half),
+        wrap=torch.nn.parallel.DistributedDataParallel,
+    )
+    stats = monitor.reducer.stats
+    (out / f"result{rank}.json").write_text(json.dumps({
+        "stopped": stopped, "should_stop": monitor.should_stop,
+        "alerts": [a.to_record() for a in monitor.alerts],
+        "by_kind": stats.by_kind, "sent": stats.bytes_sent, "received": stats.bytes_received,
+        "size": monitor.layout.size,
+    }))
+    monitor.close()
+
+
+def _records(path: Path) -> list[dict]:
+    return [json.loads(line) for line in path.read_text().splitlines()]
+
+
+@pytest.mark.timeout(180)
+def test_shift_monitor_under_ddp_equals_one_process_with_the_whole_batch(tmp_path):
+    run_ranks(_monitor_worker, tmp_path)
+    ranks = [json.loads((tmp_path / f"result{r}.json").read_text()) for r in (0, 1)]
+    one, one_stopped = train_monitored(tmp_path / "one", slice(None))
+    one.close()
+
+    # both ranks stop at the same step as one process, at the first sample of the shift
+    assert ranks[0]["stopped"] == ranks[1]["stopped"] == one_stopped
+    assert one_stopped == SHIFT_STEP
+    assert ranks[0]["should_stop"] and ranks[1]["should_stop"]
+    assert [a["rule"] for a in ranks[1]["alerts"]] == [a["rule"] for a in ranks[0]["alerts"]]
+
+    # rank 0 alone wrote the event log
+    assert not (tmp_path / "rank1" / "events.jsonl").exists()
+    two = [r for r in _records(tmp_path / "rank0" / "events.jsonl") if r["kind"] == "step"]
+    ref = [r for r in _records(tmp_path / "one" / "events.jsonl") if r["kind"] == "step"]
+    assert [r["step"] for r in two] == [r["step"] for r in ref] and len(ref) >= 4
+
+    # every metric and noise floor of every layer equals the one-process value (1e-5 rel)
+    checked = 0
+    for a, b in zip(two, ref, strict=True):
+        for layer, ea in a["layers"].items():
+            eb = b["layers"][layer]
+            assert ea["count"] == eb["count"]
+            for against in ("vs_previous", "vs_reference"):
+                if eb[against] is None:
+                    assert ea[against] is None
+                    continue
+                for metric, d in eb[against].items():
+                    for key in ("value", "noise"):
+                        got, want = ea[against][metric][key], d[key]
+                        if want is None:  # not computable yet (e.g. no histogram edges)
+                            assert got is None
+                            continue
+                        assert got == pytest.approx(want, rel=1e-5, abs=1e-12), (
+                            a["step"], layer, metric, key)
+                        checked += 1
+    assert checked > 100
+
+    # cost per sampled step: one all_gather of both phases' packed summaries (+ 1 value);
+    # once per run a 16-byte layout handshake and one broadcast of the histogram ranges
+    r0 = ranks[0]
+    samples = len(two)
+    assert r0["by_kind"] == {"handshake": 1, "all_gather": samples, "broadcast": 1}
+    per_gather = 8 * (2 * r0["size"] + 1)
+    layers = len(two[0]["layers"])
+    assert r0["sent"] == 16 + samples * per_gather + 2 * layers * 8
+    assert r0["received"] == 2 * 16 + samples * 2 * per_gather + 2 * layers * 8

@@ -94,13 +94,13 @@ class ShardedRegressor(Regressor):
     DistributedSampler without shuffling; Lightning's automatic one always shuffles
     training data, which would mix rank 1's samples into rank 0's batches)."""
 
-    def __init__(self, data: Dataset) -> None:
+    def __init__(self, data: Dataset, batch_size: int) -> None:
         super().__init__()
-        self.data = data
+        self.data, self.batch_size = data, batch_size
 
     def train_dataloader(self) -> DataLoader:
         sampler = torch.utils.data.DistributedSampler(self.data, shuffle=False)
-        return DataLoader(self.data, batch_size=BATCH, sampler=sampler)
+        return DataLoader(self.data, batch_size=self.batch_size, sampler=sampler)
 
 
 class RankRecorder(pl.Callback):
@@ -336,8 +336,12 @@ def test_compiled_submodule_is_still_sampled(tmp_path):
 @pytest.mark.timeout(240)
 def test_ddp_spawn_two_ranks_merge_and_stop_at_the_same_step(tmp_path):
     """Only rank 1's samples move; the merged statistics see it, and both ranks stop at
-    the same global step through the strategy's boolean reduction."""
-    every, shift_step = 2, 12
+    the same global step through the strategy's boolean reduction.
+
+    A shift confined to half of the global batch makes the batch's row means bimodal,
+    which the noise floor reads as spread: the score then saturates near sqrt(rows)/0.8
+    noise units however large the shift (7 at 32 rows, 10 at 64), so 32 rows per rank."""
+    every, shift_step, per_rank = 2, 12, 32
     cb = ShiftCallback(every_n_steps=every, reference_steps=3, on_alert="stop")
     out = tmp_path / "ranks"
     out.mkdir()
@@ -345,9 +349,9 @@ def test_ddp_spawn_two_ranks_merge_and_stop_at_the_same_step(tmp_path):
         tmp_path, [cb, RankRecorder(str(out))], devices=2, strategy="ddp_spawn",
         max_steps=40, use_distributed_sampler=False,
     )
-    data = SensorData(40, step_size=2 * BATCH, shift_step=shift_step, shift=3.0,
+    data = SensorData(40, step_size=2 * per_rank, shift_step=shift_step, shift=3.0,
                       odd_only=True)
-    trainer.fit(ShardedRegressor(data))
+    trainer.fit(ShardedRegressor(data, per_rank))
 
     ranks = [json.loads((out / f"rank{r}.json").read_text()) for r in (0, 1)]
     assert ranks[0]["global_step"] == ranks[1]["global_step"]
@@ -358,6 +362,6 @@ def test_ddp_spawn_two_ranks_merge_and_stop_at_the_same_step(tmp_path):
     (events_path,) = tmp_path.rglob("events.jsonl")
     records = read_events(events_path)
     for r in step_records(records):
-        assert r["layers"]["net.0"]["count"] == 2 * BATCH * FEATURES
+        assert r["layers"]["net.0"]["count"] == 2 * per_rank * FEATURES
     fails = [a for a in records if a["kind"] == "alert" and a["severity"] == "fail"]
     assert fails and fails[0]["step"] == stopped - 1 and fails[0]["layer"] == "net.0"
