@@ -41,6 +41,10 @@ Cost per sampled step and phase, with ``P`` = total packed length (for each laye
   a ring all-reduce of the same tensor would move ``2 * 8 * (W - 1) / W * (P + 1)``, so
   the gather carries ``W / 2`` times the bytes of an all-reduce: equal at ``W = 2``).
 
+:class:`~shiftwatch.monitor.ShiftMonitor` packs both phases (train and val) of a sampled
+step into one tensor, so there ``P`` is twice one phase's length; see ``docs/lightning.md``
+for measured figures.
+
 Runs without an initialised process group (or with one process) pay one
 ``is_initialized()`` check and nothing else: :meth:`SummaryReducer.reduce` returns its
 input tensor unchanged.

@@ -177,6 +177,8 @@ class ShiftCallback(Callback):
         }
         self._validate_options()
         self.monitor: ShiftMonitor | None = None
+        self._last_alerts: list = []
+        self._last_reason: str | None = None
         self._pending_state: Mapping[str, Any] | None = None
         self._batch_step: int | None = None  # global_step when the current batch began
         self._val_left: int | None = 0  # validation batches still to summarise this run
@@ -221,6 +223,18 @@ class ShiftCallback(Callback):
             every_n_steps=o["every_n_steps"], warmup_steps=o["warmup_steps"],
             reference_steps=o["reference_steps"], bins=o["bins"],
         )
+
+    @property
+    def alerts(self) -> list:
+        """The alerts of the current (or last) run of this process, as
+        :class:`~shiftwatch.rules.Alert` records.  With ``strategy="ddp_spawn"`` the runs
+        happen in child processes: read ``events.jsonl`` instead."""
+        return list(self.monitor.alerts) if self.monitor is not None else list(self._last_alerts)
+
+    @property
+    def stop_reason(self) -> str | None:
+        """Why the monitor asked to stop (the first failing alert's message), or ``None``."""
+        return self.monitor.stop_reason if self.monitor is not None else self._last_reason
 
     # ------------------------------------------------------------------ set up / tear down
     def setup(self, trainer: pl.Trainer, pl_module: pl.LightningModule, stage: str) -> None:
@@ -271,6 +285,8 @@ class ShiftCallback(Callback):
             # keep the state: a checkpoint saved after fit() (or a second fit() with
             # this callback) continues from it, as Lightning's own callbacks do
             self._pending_state = self.monitor.state_dict()
+            self._last_alerts = list(self.monitor.alerts)
+            self._last_reason = self.monitor.stop_reason
             self.monitor.close(reason=reason)
             self.monitor = None
 
