@@ -41,8 +41,9 @@ def naive_layer_values(path: Path, phase: str, against: str):
         for name, lay in rec["layers"].items():
             block = lay.get(f"vs_{against}")
             for m, e in (block or {}).items():
-                out.setdefault((name, m), []).append(
-                    (rec["step"], e["value"], e["noise"], e["ratio"]))
+                if e is not None:
+                    out.setdefault((name, m), []).append(
+                        (rec["step"], e.get("value"), e.get("noise"), e.get("ratio")))
     return out
 
 
@@ -278,3 +279,37 @@ def test_bad_options_are_refused(shifted_run, capsys):
         read_run(d, bins=0)
     with pytest.raises(LogError):
         read_run(Path(d) / "missing")
+
+
+def test_irregular_blocks_take_the_slow_path_with_the_same_results(tmp_path):
+    """Null metric entries, a metric this reader does not know, a missing key, keys in
+    another order: read entry by entry, nulls skipped, the unknown metric noted."""
+    truth = write_log(tmp_path, Scenario(samples=20, val_every=None, seed=8))
+    lines = truth.path.read_text().splitlines()
+    edited = 0
+    for i, line in enumerate(lines):
+        rec = json.loads(line)
+        if rec["kind"] != "step" or not rec["layers"]["head.fc"]["vs_reference"]:
+            continue
+        blk = rec["layers"]["head.fc"]["vs_reference"]
+        blk["psi"] = None
+        blk["future_metric"] = {"value": 1.0, "noise": 1.0, "ratio": 99.0}
+        del blk["js"]["noise"]
+        rec["layers"]["head.fc"]["vs_reference"] = dict(reversed(list(blk.items())))
+        rec["layers"]["stem.conv"]["channels"]["vs_reference"]["gauss_kl"] = None
+        lines[i] = json.dumps(rec)
+        edited += 1
+    truth.path.write_text("\n".join(lines) + "\n")
+    run = read_run(tmp_path)
+    assert any("metric 'future_metric'" in n for n in run.notes)
+    t = run.table("train", "reference")
+    naive = naive_layer_values(truth.path, "train", "reference")
+    li = run.layers.index("head.fc")
+    assert t["samples"][li, METRICS.index("psi")] == 0
+    assert t["samples"][li, METRICS.index("js")] == edited  # a missing noise is just null
+    for m in ("mean_shift", "w1", "js"):
+        rows = [r for r in naive[("head.fc", m)] if r]
+        assert t["peak_ratio"][li, METRICS.index(m)] == max(r[3] for r in rows)
+    c = run.channel_table("train", "reference")
+    assert c["ch_samples"][run.layers.index("stem.conv"), 2] == 0
+    assert c["ch_samples"][run.layers.index("stem.conv"), 0] == edited

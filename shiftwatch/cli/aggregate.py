@@ -147,6 +147,10 @@ _K_METRIC = ("value", "noise", "ratio")
 _K_CHANNEL = ("max_ratio", "max")
 _IG_METRIC, _IG_CHANNEL = itemgetter(*_K_METRIC), itemgetter(*_K_CHANNEL)
 _IG_LAYER = itemgetter("std", "nonfinite")
+_IG_BLOCK, _IG_CBLOCK = itemgetter(*METRICS), itemgetter(*CHANNEL_METRICS)
+_AR_Q = np.arange(3, dtype=np.intp)
+_AR_M, _AR_C = np.arange(len(METRICS), dtype=np.intp), np.arange(len(CHANNEL_METRICS),
+                                                                   dtype=np.intp)
 
 
 def _nums(rows: list[tuple[Any, ...]], what: str) -> np.ndarray:
@@ -246,13 +250,21 @@ class PhaseAcc:
         if self.last_step is None or step > self.last_step:
             self.last_step = step
         self.arrays["bin_records"][b] += 1
+        # fast path: a block holding exactly the known metrics, each a complete object, is
+        # taken whole by C-level itemgetters (positions base + 0..M-1); anything else goes
+        # entry by entry through _gather
+        fbase: list[int] = []
         pos: list[int] = []
         trip: list[tuple[Any, ...]] = []
+        cfbase: list[int] = []
         cpos: list[int] = []
         cpair: list[tuple[Any, ...]] = []
         cents: list[Any] = []
         lpos: list[int] = []
         lstats: list[tuple[Any, ...]] = []
+        slow_trip: list[tuple[Any, ...]] = []
+        slow_pair: list[tuple[Any, ...]] = []
+        slow_cents: list[Any] = []
         for name, lay in layers.items():
             li = lidx.get(name)
             if li is None:
@@ -269,8 +281,17 @@ class PhaseAcc:
             for ai, key in _AK:
                 d = lay.get(key)
                 if d:
-                    _gather(d, (li * _A + ai) * _M, self._layouts_m, _MIDX, _IG_METRIC,
-                            _K_METRIC, pos, trip, None, unknown, f"layers.{name}.{key}")
+                    base = (li * _A + ai) * _M
+                    try:
+                        if len(d) != _M:
+                            raise KeyError
+                        got = list(map(_IG_METRIC, _IG_BLOCK(d)))
+                    except (KeyError, TypeError):
+                        _gather(d, base, self._layouts_m, _MIDX, _IG_METRIC, _K_METRIC, pos,
+                                slow_trip, None, unknown, f"layers.{name}.{key}")
+                    else:
+                        fbase.append(base)
+                        trip.extend(got)
             ch = lay.get("channels")
             if ch:
                 if type(ch) is not dict:
@@ -278,15 +299,30 @@ class PhaseAcc:
                 for ai, key in _AK:
                     d = ch.get(key)
                     if d:
-                        _gather(d, (li * _A + ai) * _C, self._layouts_c, _CIDX, _IG_CHANNEL,
-                                _K_CHANNEL, cpos, cpair, cents, None,
-                                f"layers.{name}.channels.{key}")
-        if pos:
-            self._add_metrics(b, step, np.array(pos, dtype=np.intp),
-                              _nums(trip, "metric 'value'/'noise'/'ratio'"))
-        if cpos:
-            self._add_channels(b, step, np.array(cpos, dtype=np.intp),
-                               _nums(cpair, "channel 'max_ratio'/'max'"), cents)
+                        base = (li * _A + ai) * _C
+                        try:
+                            if len(d) != _C:
+                                raise KeyError
+                            ents = _IG_CBLOCK(d)
+                            got = list(map(_IG_CHANNEL, ents))
+                        except (KeyError, TypeError):
+                            _gather(d, base, self._layouts_c, _CIDX, _IG_CHANNEL, _K_CHANNEL,
+                                    cpos, slow_pair, slow_cents, None,
+                                    f"layers.{name}.channels.{key}")
+                        else:
+                            cfbase.append(base)
+                            cpair.extend(got)
+                            cents.extend(ents)
+        if fbase or pos:
+            p = np.concatenate([(np.array(fbase, dtype=np.intp)[:, None] + _AR_M).ravel(),
+                                np.array(pos, dtype=np.intp)])
+            self._add_metrics(b, step, p, _nums(trip + slow_trip,
+                                                "metric 'value'/'noise'/'ratio'"))
+        if cfbase or cpos:
+            p = np.concatenate([(np.array(cfbase, dtype=np.intp)[:, None] + _AR_C).ravel(),
+                                np.array(cpos, dtype=np.intp)])
+            self._add_channels(b, step, p, _nums(cpair + slow_pair, "channel 'max_ratio'/'max'"),
+                               cents + slow_cents)
         if lpos:
             self._add_layer_stats(b, step, np.array(lpos, dtype=np.intp),
                                   _nums(lstats, "layer 'std'/'nonfinite'"))
@@ -305,10 +341,10 @@ class PhaseAcc:
         win = (v > cur) | (np.isnan(cur) & np.isfinite(v))
         q = p[win]
         a["vpeak_value"][q], a["vpeak_step"][q], a["vpeak_noise"][q] = v[win], step, n[win]
-        flat = a["qhist"].reshape(-1)
-        for qi, y in enumerate((v, np.abs(n), r)):
-            fin = np.isfinite(y)
-            flat[(p[fin] * 3 + qi) * _NQ + _qbin(y[fin])] += 1  # indices unique per record
+        y = np.abs(x)  # columns value, noise, ratio: one pass for the three histograms
+        fin = np.isfinite(y)
+        idx = (p[:, None] * 3 + _AR_Q) * _NQ + _qbin(np.where(fin, y, 1.0))
+        a["qhist"].reshape(-1)[idx[fin]] += 1  # indices are unique within one record
         for name, y in (("bin_ratio", r), ("bin_value", v)):
             row = a[name][b]
             row[p] = np.fmax(row[p], y)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 from collections.abc import Sequence
 from typing import Any
@@ -28,6 +29,7 @@ __all__ = [
     "add_workers_option",
     "alert_line",
     "dump_json",
+    "emit",
     "fail",
     "headline",
     "jsonable",
@@ -66,6 +68,15 @@ def load(path: str, args: argparse.Namespace) -> RunData:
     if workers is not None and workers < 1:
         raise LogError(f"'--workers' must be at least 1 (got {workers})")
     return read_run(path, workers=workers)
+
+
+def emit(text: str) -> None:
+    """Print to stdout; a closed pipe (``| head``) ends the output quietly."""
+    try:
+        print(text, flush=True)
+    except BrokenPipeError:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # so the interpreter's final flush is quiet
 
 
 def fail(command: str, message: str) -> int:

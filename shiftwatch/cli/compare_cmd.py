@@ -39,6 +39,7 @@ from .common import (
     add_view_options,
     add_workers_option,
     dump_json,
+    emit,
     fail,
     load,
     num,
@@ -220,7 +221,7 @@ def run(args: argparse.Namespace) -> int:
     if not c["layers"]:
         return fail("compare", "the two runs have no layer name in common: compare runs of "
                                "the same model")
-    print(dump_json(c) if args.json else render_text(c))
+    emit(dump_json(c) if args.json else render_text(c))
     if args.output:
         from .report_cmd import write_compare_html  # matplotlib only when asked for
 

@@ -12,7 +12,16 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from .common import EXIT_FAIL, EXIT_OK, add_workers_option, alert_line, dump_json, fail, load
+from .common import (
+    EXIT_FAIL,
+    EXIT_OK,
+    add_workers_option,
+    alert_line,
+    dump_json,
+    emit,
+    fail,
+    load,
+)
 from .logread import LogError
 
 __all__ = ["SEVERITY_RANK", "gate", "register"]
@@ -70,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
     floor = SEVERITY_RANK[args.fail_on]
     matching = [a for a in alerts.kept if SEVERITY_RANK.get(a["severity"], 1) >= floor]
     if args.json:
-        print(dump_json({"passed": passed, "fail_on": args.fail_on, "alerts": hits,
+        emit(dump_json({"passed": passed, "fail_on": args.fail_on, "alerts": hits,
                          "by_severity": alerts.by_severity, "complete": data.complete,
                          "log": str(data.path), "shown": matching[: args.show],
                          "notes": data.notes}))
@@ -78,16 +87,16 @@ def run(args: argparse.Namespace) -> int:
     samples = ", ".join(f"{ph} {acc.records} samples (steps {acc.first_step}..{acc.last_step})"
                         for ph, acc in data.acc.phases.items()) or "no step records"
     state = "complete" if data.complete else "no end record"
+    lines = []
     if passed:
-        print(f"gate passed: no alert of severity '{args.fail_on}' or worse in {data.path} "
-              f"({samples}; {state})")
+        lines.append(f"gate passed: no alert of severity '{args.fail_on}' or worse in "
+                     f"{data.path} ({samples}; {state})")
     else:
-        print(f"gate FAILED: {hits} alert(s) of severity '{args.fail_on}' or worse in "
-              f"{data.path} ({samples}; {state})")
-        for a in matching[: args.show]:
-            print("  " + alert_line(a))
+        lines.append(f"gate FAILED: {hits} alert(s) of severity '{args.fail_on}' or worse in "
+                     f"{data.path} ({samples}; {state})")
+        lines += ["  " + alert_line(a) for a in matching[: args.show]]
         if hits > min(len(matching), args.show):
-            print(f"  ... {hits - min(len(matching), args.show)} more")
-    for note in data.notes:
-        print(f"note: {note}")
+            lines.append(f"  ... {hits - min(len(matching), args.show)} more")
+    lines += [f"note: {note}" for note in data.notes]
+    emit("\n".join(lines))
     return EXIT_OK if passed else EXIT_FAIL

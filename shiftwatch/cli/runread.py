@@ -44,6 +44,7 @@ class RunData:
     grid: Grid
     acc: RunAcc
     notes: list[str] = field(default_factory=list)
+    _cache: dict[Any, Any] = field(default_factory=dict, repr=False)
 
     @property
     def complete(self) -> bool:
@@ -70,6 +71,9 @@ class RunData:
         ``median_noise`` (from log histograms, a few percent accurate), ``bin_ratio`` and
         ``bin_value`` of shape (bins, L, M): the maximum within each step bin.
         """
+        key = ("table", phase, against)
+        if key in self._cache:  # medians cost a pass over every histogram: compute once
+            return self._cache[key]
         acc = self.phase(phase)
         if acc is None:
             return None
@@ -82,8 +86,9 @@ class RunData:
         qh = acc.qhist.reshape(L, A, M, 3, -1)[:, ai]
         for qi, name in enumerate(("value", "noise", "ratio")):
             out[f"median_{name}"] = quantile(qh[:, :, qi], 0.5)
-        for key in ("bin_ratio", "bin_value"):
-            out[key] = getattr(acc, key).reshape(-1, L, A, M)[:, :, ai]
+        for name in ("bin_ratio", "bin_value"):
+            out[name] = getattr(acc, name).reshape(-1, L, A, M)[:, :, ai]
+        self._cache[key] = out
         return out
 
     def channel_table(self, phase: str, against: str) -> dict[str, np.ndarray] | None:

@@ -21,6 +21,7 @@ from .common import (
     add_workers_option,
     alert_line,
     dump_json,
+    emit,
     fail,
     headline,
     load,
@@ -207,5 +208,5 @@ def run(args: argparse.Namespace) -> int:
     except LogError as exc:
         return fail("summary", str(exc))
     s = build_summary(data, phase=args.phase, against=args.against, metric=args.metric)
-    print(dump_json(s) if args.json else render_text(s, top=args.top))
+    emit(dump_json(s) if args.json else render_text(s, top=args.top))
     return EXIT_OK
