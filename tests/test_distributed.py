@@ -111,6 +111,7 @@ def _merge_worker(rank: int, world: int, out: Path) -> None:
     edges = [reducer.broadcast(e) for e in mine]
     merged_cur = reducer.reduce_summaries(summaries_of(cur, edges))
     merged_ref = reducer.reduce_summaries(summaries_of(ref, edges))
+    total = reducer.sum(torch.tensor([rank + 1, 10 * rank], dtype=torch.int64))
     stop = reducer.any(rank == world - 1)  # only the last rank wants to stop
     quiet = reducer.any(False)
     # layouts with the same total length but different content must raise on every rank:
@@ -139,6 +140,7 @@ def _merge_worker(rank: int, world: int, out: Path) -> None:
             "ref": [s.pack() for s in merged_ref],
             "edges": edges,
             "stop": stop,
+            "total": total,
             "quiet": quiet,
             "mismatch": mismatch,
             "stats": (reducer.stats.collectives, reducer.stats.bytes_sent,
@@ -251,6 +253,8 @@ def test_two_gloo_ranks_merge_exactly_like_one_process(tmp_path):
             assert float(two[name].value) == pytest.approx(float(one[name].value), rel=1e-5)
             assert float(two[name].noise) == pytest.approx(float(one[name].noise), rel=1e-5)
 
+    # integer sums are exact and reach every rank
+    assert r0["total"].tolist() == r1["total"].tolist() == [3, 10]
     # a stop wanted by one rank reaches all; none wanted, none taken
     assert r0["stop"] and r1["stop"] and not r0["quiet"] and not r1["quiet"]
     # differing layouts raise on every rank: twice at the handshake, then in-band
@@ -263,12 +267,12 @@ def test_two_gloo_ranks_merge_exactly_like_one_process(tmp_path):
     size = PackLayout.of(one_cur).size
     mism = PackLayout((3, 5), (0, 0)).size
     collectives, sent, received, kinds = r0["stats"]
-    assert kinds == {"broadcast": 3, "handshake": 5, "all_gather": 5, "all_reduce": 2}
+    assert kinds == {"broadcast": 3, "handshake": 5, "all_gather": 5, "all_reduce": 3}
     edge_bytes = sum(e.numel() * 8 for e in EDGES)
     gathers = 2 * (size + 1) + 3 * (mism + 1)
-    assert sent == edge_bytes + 8 * gathers + 5 * 16 + 2 * 4
-    assert received == edge_bytes + 2 * 8 * gathers + 2 * 5 * 16 + 2 * 4
-    assert collectives == 15
+    assert sent == edge_bytes + 8 * gathers + 5 * 16 + 2 * 4 + 16
+    assert received == edge_bytes + 2 * 8 * gathers + 2 * 5 * 16 + 2 * 4 + 16
+    assert collectives == 16
 
 
 # ---------------------------------------------------------------- ShiftMonitor under DDP
@@ -319,13 +323,31 @@ def _monitor_worker(rank: int, world: int, out: Path) -> None:
         wrap=torch.nn.parallel.DistributedDataParallel,
     )
     stats = monitor.reducer.stats
-    (out / f"result{rank}.json").write_text(json.dumps({
+    result = {
         "stopped": stopped, "should_stop": monitor.should_stop,
         "alerts": [a.to_record() for a in monitor.alerts],
-        "by_kind": stats.by_kind, "sent": stats.bytes_sent, "received": stats.bytes_received,
-        "size": monitor.layout.size,
-    }))
+        "by_kind": dict(stats.by_kind), "sent": stats.bytes_sent,
+        "received": stats.bytes_received, "size": monitor.layout.size,
+    }
     monitor.close()
+    # the every-step non-finite check, with a NaN in one value of rank 1's data only, at
+    # an unsampled step: the counts are summed over ranks, so rank 0 stops too
+    model = monitor_model()
+    finite = ShiftMonitor(model, out / f"finite{rank}", every_n_steps=4, on_alert="stop",
+                          check_finite_every_step=True, tensorboard=False)
+    for step in range(6):
+        x, _ = monitor_batch(step)
+        if step == 3:
+            x[-1, 0] = float("nan")  # the last row belongs to rank 1
+        with torch.no_grad():
+            model(x[rank * half:(rank + 1) * half])
+        finite.step()
+        if finite.should_stop:
+            break
+    result["finite"] = {"stopped": step, "alerts": [a.to_record() for a in finite.alerts],
+                        "by_kind": dict(finite.reducer.stats.by_kind)}
+    finite.close()
+    (out / f"result{rank}.json").write_text(json.dumps(result))
 
 
 def _records(path: Path) -> list[dict]:
@@ -381,3 +403,14 @@ def test_shift_monitor_under_ddp_equals_one_process_with_the_whole_batch(tmp_pat
     layers = len(two[0]["layers"])
     assert r0["sent"] == 16 + samples * per_gather + 2 * layers * 8
     assert r0["received"] == 2 * 16 + samples * 2 * per_gather + 2 * layers * 8
+
+    # non-finite values on rank 1 only: both ranks stop at that step, rank 0 logs it
+    for r in ranks:
+        f = r["finite"]
+        assert f["stopped"] == 3
+        first = {a["layer"]: a["value"] for a in f["alerts"] if a["rule"] == "nonfinite"}
+        assert first["0"] == 1  # the one NaN entering the first layer
+        # one summed count per step, and one merge per sampled step (0, 4 not reached)
+        assert f["by_kind"]["all_reduce"] == 4 and f["by_kind"]["all_gather"] == 1
+    finite_log = _records(tmp_path / "finite0" / "events.jsonl")
+    assert any(a["kind"] == "alert" and a["rule"] == "nonfinite" for a in finite_log)
