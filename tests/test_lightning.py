@@ -318,6 +318,26 @@ def test_raise_removes_the_hooks_and_carries_the_alert(tmp_path):
     assert records[-1]["kind"] == "end" and "ShiftAlertError" in records[-1]["reason"]
 
 
+@pytest.mark.timeout(120)
+def test_gradient_accumulation_merges_the_batches_of_a_sampled_step(tmp_path):
+    cb = ShiftCallback(every_n_steps=2, reference_steps=2, tensorboard=False)
+    trainer = make_trainer(tmp_path, [cb], max_steps=6, accumulate_grad_batches=3)
+    trainer.fit(Regressor(), loader(SensorData(18)))
+    assert trainer.global_step == 6
+    (f,) = tmp_path.rglob("events.jsonl")
+    steps = step_records(read_events(f))
+    assert [r["step"] for r in steps] == [0, 2, 4]  # optimizer steps, not batches
+    # one sample = the three micro-batches of its optimizer step; their merged mean is
+    # the mean of those 48 samples (computed here directly)
+    data = SensorData(18)
+    for r in steps:
+        first = 3 * BATCH * r["step"]
+        xs = torch.stack([data[i][0] for i in range(first, first + 3 * BATCH)])
+        assert r["layers"]["net.0"]["count"] == 3 * BATCH * FEATURES
+        assert r["layers"]["net.0"]["mean"] == pytest.approx(float(xs.double().mean()),
+                                                             rel=1e-6)
+
+
 @pytest.mark.timeout(180)
 def test_compiled_submodule_is_still_sampled(tmp_path):
     cb = ShiftCallback(every_n_steps=2, reference_steps=2, tensorboard=False)
