@@ -330,6 +330,8 @@ class Tap:
                 self.fired_first = True
         if self._channel_dim is None:
             self._channel_dim = channel_dim_for(module, x.ndim)
+        if self.edges is not None and self.edges.device != x.device:
+            self.edges = self.edges.to(x.device)  # once, not a copy per call
         try:
             s = summarize(
                 x, channel_dim=self._channel_dim, edges=self.edges,
