@@ -269,45 +269,51 @@ def compare_all(
             noise[:, k + j] = _nan_where(hs[m].noise, ok_h)
             ratio[:, k + j] = _nan_where(hs[m].ratio, ok_h)
 
-    # per-channel views: channel rows of each layer are one contiguous segment
-    crow = layout.chan_rows
+    # per-channel views: channel rows of each layer are one contiguous segment, so
+    # segment reductions (reduceat) give per-layer maxima without sorting
+    crow, starts, seg = layout.chan_rows, layout.chan_starts, layout.chan_seg
     ok_c = ok_rows[:, crow][:, None, :]  # (K, 1, Rc)
     r_c = np.where(ok_c, mr[..., crow], -np.inf)  # (K, 3, Rc)
     v_c = np.where(ok_c, mv[..., crow], -np.inf)
-    n_c3 = mn[..., crow]
-    seg = np.broadcast_to(layout.chan_seg, r_c.shape)
-    order_r = np.lexsort((-r_c, seg), axis=-1)  # by layer, then worst ratio first
-    order_v = np.lexsort((-v_c, seg), axis=-1)
-    starts = layout.chan_starts
-    worst = np.take_along_axis(order_r, np.broadcast_to(starts, (*r_c.shape[:2], L)), -1)
-    amax_v = np.take_along_axis(order_v, np.broadcast_to(starts, worst.shape), -1)
+    pos = np.arange(crow.size)
+    worst, max_r = _seg_argmax(r_c, starts, seg, pos)
+    amax_v, max_v = _seg_argmax(v_c, starts, seg, pos)
+    any_ch = np.isfinite(max_r)
     g = lambda a, i: np.take_along_axis(a, i, -1)  # noqa: E731
-    any_ch = np.isfinite(g(r_c, worst))
     cnt = np.maximum(np.add.reduceat(np.broadcast_to(ok_c, r_c.shape).astype(float),
                                      starts, axis=-1), 1)
     mean_v = np.add.reduceat(np.where(ok_c, mv[..., crow], 0.0), starts, axis=-1) / cnt
-    tops = starts[:, None] + np.arange(_TOP)[None, :]  # (L, 3)
-    inside = np.arange(_TOP)[None, :] < np.array(layout.channels)[:, None]
-    top_pos = np.where(inside, tops, 0).reshape(-1)
-    top = np.take_along_axis(order_r, np.broadcast_to(top_pos, (*r_c.shape[:2], top_pos.size)), -1)
-    top_ok = np.take_along_axis(np.isfinite(r_c), top, -1)
-    top = np.where(top_ok, top - np.repeat(starts, _TOP)[None, None, :], -1)
-    top = np.where(np.broadcast_to(inside.reshape(-1), top.shape), top, -1)
-    top = top.reshape(*r_c.shape[:2], L, _TOP)
+    # top channels: the argmax again with the ones found masked out
+    top, found, masked = [np.where(any_ch, worst, -1)], worst, r_c.copy()
+    for _ in range(_TOP - 1):
+        np.put_along_axis(masked, found, -np.inf, -1)  # found: always a valid position
+        found, m = _seg_argmax(masked, starts, seg, pos)
+        top.append(np.where(np.isfinite(m), found, -1))
+    top = np.stack(top, -1)  # (K, 3, L, 3) channel-row positions, -1 pads
+    top = np.where(top >= 0, top - starts[:, None], -1)
     out = []
     for i in range(k_o):
         channel = {
-            "max_ratio": _nan_where(g(r_c[i], worst[i]), any_ch[i]),
+            "max_ratio": _nan_where(max_r[i], any_ch[i]),
             "worst": worst[i] - starts,
             "worst_value": _nan_where(g(mv[i][:, crow], worst[i]), any_ch[i]),
-            "worst_noise": _nan_where(g(n_c3[i], worst[i]), any_ch[i]),
-            "max_value": _nan_where(g(v_c[i], amax_v[i]), any_ch[i]),
+            "worst_noise": _nan_where(g(mn[i][:, crow], worst[i]), any_ch[i]),
+            "max_value": _nan_where(max_v[i], any_ch[i]),
             "argmax_value": amax_v[i] - starts,
             "mean_value": _nan_where(mean_v[i], any_ch[i]),
             "top": top[i],
         }
         out.append(({"value": value[i], "noise": noise[i], "ratio": ratio[i]}, channel))
     return out
+
+
+def _seg_argmax(a: np.ndarray, starts: np.ndarray, seg: np.ndarray, pos: np.ndarray):
+    """Per segment of the last axis: ``(position of the first maximum, maximum)``; a
+    segment of ``-inf`` only gives its first position and ``-inf``."""
+    mx = np.fmax.reduceat(a, starts, axis=-1)  # (..., L)
+    hit = a == mx[..., seg]
+    first = np.minimum.reduceat(np.where(hit, pos, pos.size), starts, axis=-1)
+    return np.where(first < pos.size, first, starts), mx
 
 
 def observation(
