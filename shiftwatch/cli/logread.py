@@ -177,7 +177,7 @@ def iter_records(
     final line there may be cut off (no newline) and is then skipped with a note appended
     to ``notes``.  Lines appended after the caller looked at the file size are not read.
     """
-    with open(path, "rb") as f:
+    with open(path, "rb", buffering=1 << 20) as f:
         pos = start
         if start > 0:
             f.seek(start - 1)
@@ -193,7 +193,7 @@ def iter_records(
             terminated = line.endswith(b"\n")
             if is_last and pos > stop:  # written after the caller's snapshot: cut there
                 line, terminated = line[: stop - offset], False
-            if not line.strip():
+            if line.isspace() or not line:  # isspace does not copy a long line
                 continue
             try:
                 data = decode(line)

@@ -10,6 +10,7 @@ merged in file order; the result is identical to a single pass.
 
 from __future__ import annotations
 
+import gc
 import math
 import multiprocessing
 import os
@@ -112,11 +113,21 @@ def _scan(path: str, start: int, stop: int, layers: list[str], grid: Grid,
     p = Path(path)
     acc = RunAcc(layers, grid, keep_alerts=keep_alerts)
     decode = decoder(decoder_name)
-    for rec in iter_records(p, start, stop, decode=decode, notes=acc.notes, is_last=is_last):
-        try:
-            acc.add(rec.data, rec.offset)
-        except ValueError as exc:
-            raise wrap_error(exc, f"{p}: line {line_number(p, rec.offset)}") from None
+    # Decoded records are trees freed by reference counting; with ~15,000 objects per step
+    # record the cyclic collector would run constantly for nothing (about 40% of the time
+    # measured on a 200-layer log), so it is paused while scanning and restored afterwards.
+    was_enabled = gc.isenabled()
+    gc.disable()
+    try:
+        for rec in iter_records(p, start, stop, decode=decode, notes=acc.notes,
+                                is_last=is_last):
+            try:
+                acc.add(rec.data, rec.offset)
+            except ValueError as exc:
+                raise wrap_error(exc, f"{p}: line {line_number(p, rec.offset)}") from None
+    finally:
+        if was_enabled:
+            gc.enable()
     return acc
 
 
