@@ -173,6 +173,7 @@ def build_report(run: RunData, *, phase: str = "train", against: str = "referenc
     settings = [(k, _value(v)) for k, v in sorted(run.settings.items())]
     rule_keys = ["name", "metric", "against", "view", "threshold", "units", "layers",
                  "patience", "cooldown", "severity", "phase"]
+    rule_keys += sorted({k for r in run.rules for k in r if k not in rule_keys})
     rrows = [[_value(r.get(k)) if k != "name" else r.get(k) for k in rule_keys]
              for r in run.rules]
     lrows = [[e.get("name"), e.get("type"), _value(e.get("channels"))]
