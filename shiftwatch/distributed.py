@@ -42,7 +42,7 @@ Cost per sampled step and phase, with ``P`` = total packed length (for each laye
   the gather carries ``W / 2`` times the bytes of an all-reduce: equal at ``W = 2``).
 
 :class:`~shiftwatch.monitor.ShiftMonitor` packs both phases (train and val) of a sampled
-step into one tensor, so there ``P`` is twice one phase's length; see ``docs/lightning.md``
+step into one tensor, so there ``P`` is twice one phase's length; see ``README.md``
 for measured figures.
 
 Runs without an initialised process group (or with one process) pay one

@@ -350,7 +350,7 @@ class Alert:
         )
 
     def to_record(self) -> dict[str, Any]:
-        """The event-log record (``kind: "alert"``, docs/eventlog.md)."""
+        """The event-log record (``kind: "alert"``, README.md)."""
         rec: dict[str, Any] = {"kind": "alert", **asdict(self), "message": self.message}
         if self.channel is None:
             del rec["channel"]

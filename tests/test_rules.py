@@ -169,7 +169,7 @@ def test_alert_record_has_documented_keys():
     j = judge(Rule("mean_shift", threshold=5, severity="fail", name="r"))
     (a,) = j.evaluate(obs(12, [8, 0, 0]))
     rec = a.to_record()
-    # keys required by the issue and docs/eventlog.md
+    # keys required by the issue and README.md
     for key in ("kind", "step", "layer", "metric", "value", "threshold", "severity", "phase",
                 "against", "view", "units", "raw", "noise", "rule", "action", "message"):
         assert key in rec

@@ -1,4 +1,4 @@
-"""The JSON Lines event log: records as docs/eventlog.md (schema 1) says, and failures
+"""The JSON Lines event log: records as README.md (schema 1) says, and failures
 that never stop training.  Lines are read back with Python's own ``json`` parser in strict
 mode (no NaN/Infinity tokens), the reference for what "valid JSON" means here."""
 

@@ -6,7 +6,7 @@ file.  The model factory returns an ``nn.Module``; the data factory an iterable 
 batches (a list of tensors, a DataLoader of ``(input, target)`` pairs, ...).
 
 Prints the probe's tables to stdout; ``--json`` writes the result (format in
-docs/probe.md), ``--plot`` a PNG (needs matplotlib).  Existing files are not overwritten
+README.md), ``--plot`` a PNG (needs matplotlib).  Existing files are not overwritten
 unless ``--overwrite`` is given.  Exit codes: 0 done, 2 unusable input (every such case
 prints one ``error:`` line naming the option and the fix).
 """
@@ -55,7 +55,7 @@ def register(subparsers: Any) -> None:
     p.add_argument("--batch-sizes", default="2,4,8,16,32", metavar="B,B,...",
                    help="comma-separated batch sizes to evaluate (default: %(default)s)")
     p.add_argument("--tolerance", type=float, default=None, metavar="NATS",
-                   help="KL tolerance per channel (default 0.05; see docs/probe.md)")
+                   help="KL tolerance per channel (default 0.05; see README.md)")
     p.add_argument("--draws", type=int, default=256, help="random sub-batches per batch size")
     p.add_argument("--seed", type=int, default=0, help="seed of the sub-batch draws")
     p.add_argument("--max-samples", type=int, default=None, metavar="N",

@@ -1,6 +1,6 @@
 """Result objects of the probe and their JSON form.
 
-The JSON layout (``schema`` 1) is documented in ``docs/probe.md``.  Floats that are not
+The JSON layout (``schema`` 1) is documented in ``README.md``.  Floats that are not
 finite are written as ``null``; batch sizes are object keys, hence strings (``"2"``).
 """
 
@@ -122,7 +122,7 @@ class ProbeResult:
         the smallest evaluated batch size at which every BatchNorm layer is within
         tolerance.  ``None`` when there is no BatchNorm layer or some layer is within
         tolerance at no evaluated size.  A statistics-side indicator, not a promise about
-        accuracy (see docs/probe.md)."""
+        accuracy (see README.md)."""
         bn = [lr for lr in self.layers if lr.batch_sizes]
         if not bn or any(lr.smallest_batch_size is None for lr in bn):
             return None
@@ -141,7 +141,7 @@ class ProbeResult:
         raise KeyError(f"no probed layer named {name!r}; layers: {names}")
 
     def to_dict(self) -> dict[str, Any]:
-        """The JSON document described in docs/probe.md."""
+        """The JSON document described in README.md."""
         return {
             "schema": SCHEMA,
             "samples": self.samples,
@@ -153,7 +153,7 @@ class ProbeResult:
                 "kl_nats_per_channel": self.tolerance,
                 "quantile": self.quantile,
                 "basis": "common practice, no source: about the distortion BatchNorm gets "
-                "at batch size 32 on independent values; see docs/probe.md",
+                "at batch size 32 on independent values; see README.md",
             },
             "recommended_batch_size": self.recommended_batch_size,
             "stale_layers": self.stale_layers,

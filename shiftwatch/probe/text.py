@@ -64,7 +64,7 @@ def render(result: ProbeResult) -> str:
         f"(seed {result.seed})",
         f"tolerance: in {round(result.quantile * 100)}% of sub-batches the normalized output "
         f"is distorted by less than {result.tolerance:g} nats/channel (KL; common practice, "
-        "no source; see docs/probe.md)",
+        "no source; see README.md)",
     ]
     bn = [lr for lr in result.layers if lr.batch_sizes is not None]
     if bn:

@@ -1,6 +1,6 @@
 """The event log: one JSON object per line, appended and flushed record by record.
 
-The record format (schema 1) is documented in ``docs/eventlog.md``; this module only
+The record format (schema 1) is documented in ``README.md``; this module only
 writes lines, it does not decide what goes into them.  Standard library only.
 
 Durability: every record is handed to the operating system with one unbuffered
@@ -143,7 +143,7 @@ def dumps_line(record: Any) -> str:
 
 
 class EventLog:
-    """Append-only JSON Lines file, one record per line (see ``docs/eventlog.md``).
+    """Append-only JSON Lines file, one record per line (see ``README.md``).
 
     Args:
         path: the file to append to (usually ``<log_dir>/events.jsonl``).  Missing parent
@@ -224,7 +224,7 @@ class EventLog:
         if not isinstance(record, Mapping):
             raise TypeError(
                 f"'record' must be a dict (got {type(record).__name__}); build the record "
-                "as documented in docs/eventlog.md"
+                "as documented in README.md"
             )
         schema = record.get("schema", SCHEMA_VERSION)
         if schema != SCHEMA_VERSION:
