@@ -369,10 +369,11 @@ def summarize(
             not be the sample axis 0.
         edges: increasing bin edges (any float dtype, any device) for the histogram, or
             ``None`` for no histogram.
-        max_hist_values: at most this many values (a strided subsample taken on the
-            device) go into the histogram; ``None`` uses all values.  Moments always use
-            all values.  Subsampled histograms are not exactly mergeable with the
-            histogram of the concatenated input (the strides differ).
+        max_hist_values: at most this many values (a subsample of evenly spread
+            contiguous chunks of 64 values, taken on the device) go into the histogram;
+            ``None`` uses all values.  Moments always use all values.  Subsampled
+            histograms are not exactly mergeable with the histogram of the concatenated
+            input (the picks differ).
 
     Returns:
         A :class:`Summary` on ``x.device``.
@@ -580,12 +581,9 @@ def _check_edges(edges: Tensor, device: torch.device) -> Tensor:
 
 
 def _histogram(x: Tensor, edges: Tensor, max_values: int | None) -> Tensor:
-    """Counts ``[underflow, bins..., overflow]`` of the finite values of a (strided)
+    """Counts ``[underflow, bins..., overflow]`` of the finite values of a (chunked)
     subsample of ``x``; non-finite values are dropped."""
-    flat = x.reshape(-1)
-    if max_values is not None and flat.numel() > max_values:
-        stride = -(-flat.numel() // max_values)
-        flat = flat[::stride].contiguous()
+    flat = _subsample(x.reshape(-1), max_values)
     n_bins = edges.numel() - 1
     drop = n_bins + 2  # index of the discarded bin for non-finite values
     if edges.device.type == "cpu" and _is_uniform(edges):
@@ -603,6 +601,32 @@ def _histogram(x: Tensor, edges: Tensor, max_values: int | None) -> Tensor:
         counts = torch.zeros(drop + 1, dtype=torch.float64, device=idx.device)
         counts.index_add_(0, idx, torch.ones(idx.shape, dtype=torch.float64, device=idx.device))
     return counts[:-1]
+
+
+_CHUNK = 64  # values per contiguous piece of the histogram subsample (256 B of float32)
+
+
+def _subsample(flat: Tensor, max_values: int | None) -> Tensor:
+    """At most ``max_values`` values of ``flat``: every ``step``-th contiguous chunk of
+    ``_CHUNK`` values, ``step`` a prime (so the pick does not alias with power-of-two
+    layouts such as channel planes).  Chunks touch few cache lines: a plain strided pick
+    read most of a large tensor from memory again (~1.5 ms for 8 MB on 2 CPU threads)."""
+    n = flat.numel()
+    if max_values is None or n <= max_values:
+        return flat
+    n_chunks = n // _CHUNK
+    want = max_values // _CHUNK
+    if want < 1 or n_chunks < 2 * want:
+        return flat[:: -(-n // max_values)].contiguous()
+    step = _next_prime(-(-n_chunks // want))
+    return flat[: n_chunks * _CHUNK].view(n_chunks, _CHUNK)[::step].reshape(-1)
+
+
+def _next_prime(k: int) -> int:
+    k = max(k, 2)
+    while any(k % d == 0 for d in range(2, math.isqrt(k) + 1)):
+        k += 1
+    return k
 
 
 def _is_uniform(edges: Tensor) -> bool:

@@ -6,18 +6,14 @@ from __future__ import annotations
 import copy
 import json
 import os
-import queue
-import re
 import subprocess
 import sys
-import threading
 import time
-import urllib.parse
-import urllib.request
 
 import numpy as np
 import pytest
 import torch
+from tensorboard_server import get_json, start_tensorboard
 from test_monitor import DIGITS, make_model, records, train
 
 from shiftwatch import ConfigError, ShiftMonitor
@@ -208,57 +204,27 @@ def test_tensorboard_false_writes_only_the_event_log(tmp_path):
     assert os.listdir(tmp_path) == ["events.jsonl"]
 
 
-def _serve(logdir):
-    """Start a real TensorBoard server on loopback (port 0) and read the port it prints."""
-    exe = os.path.join(os.path.dirname(sys.executable), "tensorboard")
-    proc = subprocess.Popen([exe, "--logdir", str(logdir), "--host", "127.0.0.1", "--port", "0"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    lines: queue.Queue = queue.Queue()
-    threading.Thread(target=lambda: [lines.put(x) for x in proc.stderr], daemon=True).start()
-    deadline, seen = time.monotonic() + 60, []
-    while time.monotonic() < deadline:
-        try:
-            line = lines.get(timeout=0.5)
-        except queue.Empty:
-            if proc.poll() is not None:
-                break
-            continue
-        seen.append(line)
-        found = re.search(r"http://127\.0\.0\.1:(\d+)/", line)
-        if found:
-            return proc, int(found.group(1))
-    proc.kill()
-    raise AssertionError("TensorBoard did not print its address:\n" + "".join(seen))
-
-
-def _get(port, path, **params):
-    url = f"http://127.0.0.1:{port}/{path}" + ("?" + urllib.parse.urlencode(params)
-                                              if params else "")
-    with urllib.request.urlopen(url, timeout=10) as response:
-        return json.loads(response.read().decode())
-
-
 def test_live_tensorboard_server_shows_the_monitors_tags_and_layout(tmp_path):
     model = make_model()
     mon = ShiftMonitor(model, tmp_path / "exp1", every_n_steps=2, reference_steps=2)
     train(model, mon, 16)
     mon.close()
-    proc, port = _serve(tmp_path)
+    proc, port = start_tensorboard(tmp_path)
     try:
         want = {f"shift.train.{m}.vs_{a}/{layer}" for m in ("mean_shift", "w1")
                 for a in ("previous", "reference") for layer in mon.layers}
         deadline, tags = time.monotonic() + 60, {}
         while time.monotonic() < deadline:  # the server loads files in the background
-            tags = _get(port, "data/plugin/scalars/tags").get("exp1", {})
+            tags = get_json(port, "data/plugin/scalars/tags").get("exp1", {})
             if want <= set(tags):
                 break
             time.sleep(0.5)
         assert want <= set(tags)
-        layout = _get(port, "data/plugin/custom_scalars/layout")
+        layout = get_json(port, "data/plugin/custom_scalars/layout")
         charts = {c["title"]: c["multiline"]["tag"][0] for cat in layout["category"]
                   for c in cat["chart"]}
         regex = charts["mean_shift vs reference (ratio to noise)"]
-        served = _get(port, "data/plugin/custom_scalars/scalars", run="exp1", tag=regex)
+        served = get_json(port, "data/plugin/custom_scalars/scalars", run="exp1", tag=regex)
         # one line per watched layer in the chart
         assert set(served["tag_to_events"]) == {
             f"shift.train.mean_shift.vs_reference/{layer}" for layer in mon.layers}

@@ -6,15 +6,12 @@ from __future__ import annotations
 
 import json
 import os
-import queue
 import re
 import subprocess
 import sys
 import textwrap
 import threading
 import time
-import urllib.parse
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -28,6 +25,7 @@ from tensorboard.backend.event_processing.event_file_loader import EventFileLoad
 from tensorboard.compat.tensorflow_stub.pywrap_tensorflow import masked_crc32c as tb_crc
 from tensorboard.plugins.custom_scalar import layout_pb2
 from tensorboard.util import tensor_util
+from tensorboard_server import get_json, start_tensorboard
 from torch.utils.tensorboard import SummaryWriter
 
 from shiftwatch.errors import ConfigError, ShiftWatchWarning
@@ -262,57 +260,22 @@ def test_new_layout_arguments_replace_the_layout(tmp_path):
     assert layer_regex("train", ["psi", "w1"], "reference", "b") in regexes
 
 
-def _start_tensorboard(logdir: Path) -> tuple[subprocess.Popen, int]:
-    exe = Path(sys.executable).with_name("tensorboard")
-    proc = subprocess.Popen(
-        [str(exe), "--logdir", str(logdir), "--host", "127.0.0.1", "--port", "0"],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
-    lines: queue.Queue[str] = queue.Queue()
-    threading.Thread(target=lambda: [lines.put(x) for x in proc.stderr], daemon=True).start()
-    deadline = time.monotonic() + 60
-    seen = []
-    while time.monotonic() < deadline:
-        try:
-            line = lines.get(timeout=0.5)
-        except queue.Empty:
-            if proc.poll() is not None:
-                break
-            continue
-        seen.append(line)
-        found = re.search(r"http://127\.0\.0\.1:(\d+)/", line)
-        if found:
-            return proc, int(found.group(1))
-    proc.kill()
-    raise AssertionError("TensorBoard did not print its address:\n" + "".join(seen))
-
-
-def _get(port: int, path: str, **params: str):
-    url = f"http://127.0.0.1:{port}/{path}"
-    if params:
-        url += "?" + urllib.parse.urlencode(params)
-    with urllib.request.urlopen(url, timeout=10) as response:
-        return json.loads(response.read().decode())
-
-
 def test_real_tensorboard_server_serves_tags_layout_and_matches_regexes(tmp_path):
     logdir = tmp_path / "logs"
     with TensorBoardSink(logdir / "exp1") as sink:
         written = write_demo_run(sink)
-    proc, port = _start_tensorboard(logdir)
+    proc, port = start_tensorboard(logdir)
     try:
         deadline = time.monotonic() + 60
         tags: dict = {}
         while time.monotonic() < deadline:  # the server loads the files in the background
-            tags = _get(port, "data/plugin/scalars/tags").get("exp1", {})
+            tags = get_json(port, "data/plugin/scalars/tags").get("exp1", {})
             if set(tags) == set(written):
                 break
             time.sleep(0.5)
         assert set(tags) == set(written)
 
-        layout = _get(port, "data/plugin/custom_scalars/layout")
+        layout = get_json(port, "data/plugin/custom_scalars/layout")
         titles = [c["title"] for c in layout["category"]]
         assert titles == [
             "shift (train): metrics across layers",
@@ -324,7 +287,7 @@ def test_real_tensorboard_server_serves_tags_layout_and_matches_regexes(tmp_path
         regex = charts["mean_shift vs reference (ratio to noise)"]
         assert regex == metric_regex("train", "mean_shift", "reference")
         # the server applies the regex itself: one line per layer
-        served = _get(port, "data/plugin/custom_scalars/scalars", run="exp1", tag=regex)
+        served = get_json(port, "data/plugin/custom_scalars/scalars", run="exp1", tag=regex)
         assert served["regex_valid"]
         assert set(served["tag_to_events"]) == {
             scalar_tag("train", "reference", "mean_shift", layer) for layer in LAYERS
@@ -333,7 +296,7 @@ def test_real_tensorboard_server_serves_tags_layout_and_matches_regexes(tmp_path
         assert [[s, v] for _, s, v in served["tag_to_events"][tag]] == [
             [s, pytest.approx(v, rel=1e-6)] for s, v in written[tag]
         ]
-        texts = _get(port, "data/plugin/text/text", run="exp1", tag="shift.alerts/text_summary")
+        texts = get_json(port, "data/plugin/text/text", run="exp1", tag="shift.alerts/text_summary")
         assert "<strong>features.0</strong>" in texts[0]["text"]
     finally:
         proc.terminate()
