@@ -1,4 +1,4 @@
-"""A synthetic event-log writer that follows docs/eventlog.md (schema 1) to the letter.
+"""A synthetic event-log writer that follows README.md (schema 1) to the letter.
 
 It stands in for the monitor until recorded runs exist.  The numbers follow a simple model
 that has the properties the real metrics have (see shiftwatch/divergence.py's docstring):

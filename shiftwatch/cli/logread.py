@@ -1,4 +1,4 @@
-"""Streaming access to a run's event log (``events.jsonl``, schema 1, see docs/eventlog.md).
+"""Streaming access to a run's event log (``events.jsonl``, schema 1, see README.md).
 
 The reader never holds the whole log: it walks byte ranges line by line and hands every
 decoded record to a callback.  Large logs are split into byte ranges read by several
