@@ -197,7 +197,8 @@ def _assert_same_summary(m: Summary, f: Summary):
     for col in ("mean", "row_mean"):
         diff = (m.table[:, n(col)] - f.table[:, n(col)]).abs()
         sd = (f.table[:, n("m2")] / f.table[:, n("n")].clamp_min(1)).sqrt()
-        assert (diff <= 1e-7 * (f.table[:, n(col)].abs() + sd + 1e-3)).all(), col
+        # float32 partial sums (order depends on layout and buffer alignment): ~1e-6 of scale
+        assert (diff <= 1e-6 * (f.table[:, n(col)].abs() + sd + 1e-3)).all(), col
     # Sums of squares are accumulated in float32 per (row, channel) about a per-part shift
     # (the first value of the part), so the two sides round differently: ~1e-6 relative.
     var = f.table[:, n("m2")] / f.table[:, n("n")].clamp_min(1)
