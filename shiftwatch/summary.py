@@ -474,7 +474,7 @@ def _finish(s1, s2, nf, shift, lo_c, hi_c, per_row: int):
     m2_rc = cat([m2_rc, m2_r[:, None]], 1)
     nf = cat([nf, nf.sum(1)[:, None]], 1)
     n, mean, m2 = _reduce_moments(cnt, m_rc, m2_rc, 0)
-    valid = (cnt > 0) * 1.0
+    valid = (cnt > 0) + cnt * 0.0  # float64 in numpy and torch alike
     v_rc = m2_rc / cnt.clip(min=1)
     rows, row_mean, row_mean_m2 = _reduce_moments(valid, m_rc, None, 0)
     _, row_var, row_var_m2 = _reduce_moments(valid, v_rc, None, 0)
@@ -490,11 +490,12 @@ def _finish(s1, s2, nf, shift, lo_c, hi_c, per_row: int):
     return table, xp.stack([lo, hi])
 
 
-def _table_single_values(x: Tensor) -> tuple[Tensor, Tensor]:
+def _table_single_values(x: Tensor, *, use_numpy: bool | None = None) -> tuple[Tensor, Tensor]:
     """Table and extrema of an ``(N, C)`` tensor holding one value per (row, channel).
-    On CPU the float64 arithmetic runs in numpy (~4x cheaper per operation here)."""
+    On CPU the float64 arithmetic runs in numpy (~4x cheaper per operation here);
+    ``use_numpy=False`` forces the torch path other devices take (for tests)."""
     v = x.to(torch.float64)
-    on_cpu = v.device.type == "cpu"
+    on_cpu = v.device.type == "cpu" if use_numpy is None else use_numpy
     if on_cpu:
         v = v.numpy()
     xp = np if on_cpu else torch
@@ -512,7 +513,7 @@ def _table_single_values(x: Tensor) -> tuple[Tensor, Tensor]:
     n_c, mean_c, m2_c = moments(0)  # per channel: each finite value is its own row
     n_r, mean_r, m2_r = moments(1)  # per row, across channels
     n_l, mean_l, m2_l = _reduce_moments(n_c, mean_c, m2_c, 0)
-    valid = (n_r > 0) * 1.0
+    valid = (n_r > 0) + n_r * 0.0  # float64 in numpy and torch alike
     rows, row_mean, row_mean_m2 = _reduce_moments(valid, mean_r, None, 0)
     _, row_var, row_var_m2 = _reduce_moments(valid, m2_r / n_r.clip(min=1), None, 0)
     zeros = n_c * 0.0

@@ -261,3 +261,30 @@ def test_merge_equals_concatenation(
         [summarize(x[:k], **kw), summarize(x[k:j], **kw), summarize(x[j:], **kw)]
     )
     _assert_same_summary(three, full)
+
+
+def test_torch_and_numpy_tails_agree():
+    """On CPU the small float64 tail runs in numpy; other devices (CUDA) run the same code
+    in torch.  Run the torch variant on CPU to check that both give the same table."""
+    from shiftwatch.summary import _finish, _table_single_values
+
+    g = torch.Generator().manual_seed(11)
+    n, c, per_row = 7, 5, 12
+    s1 = torch.randn(n, c, generator=g, dtype=torch.float64) * 3
+    s2 = s1**2 / per_row + torch.rand(n, c, generator=g, dtype=torch.float64) * 10
+    nf = torch.randint(0, 3, (n, c), generator=g).double()
+    nf[2, 1] = per_row  # a cell with no finite value
+    shift = torch.randn(c, generator=g, dtype=torch.float64)
+    lo, hi = -torch.rand(c, dtype=torch.float64), torch.rand(c, dtype=torch.float64)
+    t_table, t_ext = _finish(s1, s2, nf, shift, lo, hi, per_row)
+    n_table, n_ext = _finish(*(t.numpy() for t in (s1, s2, nf, shift, lo, hi)), per_row)
+    assert t_table.dtype == torch.float64
+    np.testing.assert_allclose(t_table.numpy(), n_table, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(t_ext.numpy(), n_ext, rtol=1e-12)
+    x = torch.randn(9, 4, generator=g)
+    x[3, 2] = math.nan
+    a_table, a_ext = _table_single_values(x, use_numpy=True)
+    b_table, b_ext = _table_single_values(x, use_numpy=False)
+    assert b_table.dtype == torch.float64
+    np.testing.assert_allclose(a_table.numpy(), b_table.numpy(), rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(a_ext.numpy(), b_ext.numpy(), rtol=1e-12)
