@@ -70,7 +70,7 @@ import torch
 from torch import Tensor
 
 from .errors import ConfigError
-from .summary import FIELD_GROUPS, FIELDS, Summary
+from .summary import FIELDS, Summary, merge_tables
 
 __all__ = [
     "CommStats",
@@ -175,31 +175,6 @@ def _build_index(layout: PackLayout, device: torch.device) -> _Index:
         torch.tensor(hi, device=device),
         torch.cat(hist).to(device),
     )
-
-
-def merge_tables(tables: Tensor) -> Tensor:
-    """Merge stacked summary tables ``(W, R, len(FIELDS))`` along dim 0 into ``(R, F)``.
-
-    Walks :data:`shiftwatch.summary.FIELD_GROUPS`: ``sum`` columns add, ``moments``
-    groups (count, mean, M2) use the k-way Chan update given in the module docstring.
-    The result equals ``Summary.merge`` applied left to right, up to float64 rounding.
-    """
-    out = torch.empty_like(tables[0])
-    for group in FIELD_GROUPS:
-        if group[0] == "sum":
-            i = _IX[group[1]]
-            out[:, i] = tables[:, :, i].sum(0)
-            continue
-        ci, mi, vi = (_IX[g] for g in group[1:])
-        n, mean, m2 = tables[:, :, ci], tables[:, :, mi], tables[:, :, vi]
-        total = n.sum(0)
-        safe = torch.where(total > 0, total, torch.ones_like(total))
-        mu = torch.where(total > 0, (n * mean).sum(0) / safe, torch.zeros_like(total))
-        dev = mean - mu
-        out[:, ci] = total
-        out[:, mi] = mu
-        out[:, vi] = m2.sum(0) + (n * dev * dev).sum(0)
-    return out
 
 
 @dataclass

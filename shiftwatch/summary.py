@@ -51,6 +51,7 @@ __all__ = [
     "FIELD_GROUPS",
     "Summary",
     "make_edges",
+    "merge_tables",
     "summarize",
 ]
 
@@ -80,16 +81,6 @@ FIELD_GROUPS: tuple[tuple[str, ...], ...] = (
 SCHEMA = 1
 
 
-def _chan(n_a: Tensor, mean_a: Tensor, m2_a: Tensor, n_b: Tensor, mean_b: Tensor, m2_b: Tensor):
-    """Chan et al. pairwise merge of (count, mean, M2); safe for zero counts."""
-    n = n_a + n_b
-    safe = torch.where(n > 0, n, torch.ones_like(n))
-    delta = mean_b - mean_a
-    mean = torch.where(n > 0, mean_a + delta * (n_b / safe), torch.zeros_like(n))
-    m2 = m2_a + m2_b + delta * delta * (n_a * n_b / safe)
-    return n, mean, m2
-
-
 def _reduce_moments(n, mean, m2, dim: int):
     """Merge many (count, mean, M2) triples along ``dim`` (0 or 1) in one vectorised step.
     Works on torch tensors and on numpy arrays alike (the CPU tail runs in numpy)."""
@@ -101,6 +92,26 @@ def _reduce_moments(n, mean, m2, dim: int):
     if m2 is not None:
         m2_tot = m2_tot + m2.sum(dim)
     return total, xp.where(total > 0, mu, 0.0), m2_tot
+
+
+def merge_tables(tables: Tensor) -> Tensor:
+    """Merge stacked summary tables ``(K, C + 1, len(FIELDS))`` along dim 0 into one
+    ``(C + 1, len(FIELDS))`` table, exactly: walks :data:`FIELD_GROUPS` once (``sum``
+    columns add; ``moments`` groups use the k-way Chan update
+    ``n = sum n_i, mean = sum n_i mean_i / n, M2 = sum M2_i + sum n_i (mean_i - mean)^2``).
+    Used by :meth:`Summary.merge` (K = 2) and by the cross-process merge (K = world size).
+    """
+    out = torch.empty_like(tables[0])
+    for group in FIELD_GROUPS:
+        if group[0] == "sum":
+            i = _IX[group[1]]
+            out[:, i] = tables[:, :, i].sum(0)
+            continue
+        ci, mi, vi = (_IX[g] for g in group[1:])
+        out[:, ci], out[:, mi], out[:, vi] = _reduce_moments(
+            tables[:, :, ci], tables[:, :, mi], tables[:, :, vi], 0
+        )
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -205,21 +216,7 @@ class Summary:
                 "cannot merge histograms with different edges; fix the edges once "
                 "(e.g. from a reference) and pass them to every summarize() call"
             )
-        a, b = self.table, other.table
-        out = a.clone()
-        for group in FIELD_GROUPS:
-            if group[0] == "sum":
-                i = _IX[group[1]]
-                out[:, i] = a[:, i] + b[:, i]
-                continue
-            ci, mi, vi = (_IX[g] for g in group[1:])
-            n, mean, m2 = _chan(a[:, ci], a[:, mi], a[:, vi], b[:, ci], b[:, mi], b[:, vi])
-            out[:, mi], out[:, vi] = mean, m2
-        # counts last: both moment groups sharing "rows" needed the unmerged count
-        for group in FIELD_GROUPS:
-            if group[0] == "moments":
-                ci = _IX[group[1]]
-                out[:, ci] = a[:, ci] + b[:, ci]
+        out = merge_tables(torch.stack([self.table, other.table]))
         extrema = torch.stack(
             [torch.minimum(self.extrema[0], other.extrema[0]),
              torch.maximum(self.extrema[1], other.extrema[1])]
