@@ -49,3 +49,13 @@ def get_json(port: int, path: str, **params: str):
         url += "?" + urllib.parse.urlencode(params)
     with urllib.request.urlopen(url, timeout=10) as response:
         return json.loads(response.read().decode())
+
+
+def stop_tensorboard(proc: subprocess.Popen) -> None:
+    """Terminate the server; kill it if it does not exit within 15 s."""
+    proc.terminate()
+    try:
+        proc.wait(timeout=15)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(timeout=15)

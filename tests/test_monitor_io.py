@@ -13,7 +13,7 @@ import time
 import numpy as np
 import pytest
 import torch
-from tensorboard_server import get_json, start_tensorboard
+from tensorboard_server import get_json, start_tensorboard, stop_tensorboard
 from test_monitor import DIGITS, make_model, records, train
 
 from shiftwatch import ConfigError, ShiftMonitor
@@ -229,9 +229,4 @@ def test_live_tensorboard_server_shows_the_monitors_tags_and_layout(tmp_path):
         assert set(served["tag_to_events"]) == {
             f"shift.train.mean_shift.vs_reference/{layer}" for layer in mon.layers}
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=15)
+        stop_tensorboard(proc)

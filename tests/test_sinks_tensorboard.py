@@ -25,7 +25,7 @@ from tensorboard.backend.event_processing.event_file_loader import EventFileLoad
 from tensorboard.compat.tensorflow_stub.pywrap_tensorflow import masked_crc32c as tb_crc
 from tensorboard.plugins.custom_scalar import layout_pb2
 from tensorboard.util import tensor_util
-from tensorboard_server import get_json, start_tensorboard
+from tensorboard_server import get_json, start_tensorboard, stop_tensorboard
 from torch.utils.tensorboard import SummaryWriter
 
 from shiftwatch.errors import ConfigError, ShiftWatchWarning
@@ -299,12 +299,7 @@ def test_real_tensorboard_server_serves_tags_layout_and_matches_regexes(tmp_path
         texts = get_json(port, "data/plugin/text/text", run="exp1", tag="shift.alerts/text_summary")
         assert "<strong>features.0</strong>" in texts[0]["text"]
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=15)
+        stop_tensorboard(proc)
 
 
 # ------------------------------------------------------------------ sharing a writer
