@@ -35,15 +35,14 @@ variances (``M2 / n``) unless a name says ``unbiased``.
 from __future__ import annotations
 
 import math
-import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
 import torch
 from torch import Tensor
 
+from .cells import FIELDS, check_edges, histogram, reduce_moments, release_scratch, table_of
 from .errors import ConfigError, UnsupportedInputError
 
 __all__ = [
@@ -52,21 +51,10 @@ __all__ = [
     "Summary",
     "make_edges",
     "merge_tables",
+    "release_scratch",
     "summarize",
 ]
 
-#: Column names of :attr:`Summary.table`.
-FIELDS: tuple[str, ...] = (
-    "n",  # number of finite values
-    "mean",  # mean of finite values
-    "m2",  # sum of squared deviations from the mean
-    "nonfinite",  # number of NaN/inf values
-    "rows",  # number of rows (samples) with at least one finite value
-    "row_mean",  # mean over rows of the row means
-    "row_mean_m2",  # M2 of the row means
-    "row_var",  # mean over rows of the within-row (population) variances
-    "row_var_m2",  # M2 of the within-row variances
-)
 _IX = {name: i for i, name in enumerate(FIELDS)}
 
 #: How each column merges: ("moments", count, mean, m2) groups use Chan's update;
@@ -79,19 +67,6 @@ FIELD_GROUPS: tuple[tuple[str, ...], ...] = (
 )
 
 SCHEMA = 1
-
-
-def _reduce_moments(n, mean, m2, dim: int):
-    """Merge many (count, mean, M2) triples along ``dim`` (0 or 1) in one vectorised step.
-    Works on torch tensors and on numpy arrays alike (the CPU tail runs in numpy)."""
-    xp = np if isinstance(n, np.ndarray) else torch
-    total = n.sum(dim)
-    mu = (n * mean).sum(dim) / total.clip(min=1)
-    dev = mean - (mu[None] if dim == 0 else mu[:, None])
-    m2_tot = (n * dev * dev).sum(dim)
-    if m2 is not None:
-        m2_tot = m2_tot + m2.sum(dim)
-    return total, xp.where(total > 0, mu, 0.0), m2_tot
 
 
 def merge_tables(tables: Tensor) -> Tensor:
@@ -108,7 +83,7 @@ def merge_tables(tables: Tensor) -> Tensor:
             out[:, i] = tables[:, :, i].sum(0)
             continue
         ci, mi, vi = (_IX[g] for g in group[1:])
-        out[:, ci], out[:, mi], out[:, vi] = _reduce_moments(
+        out[:, ci], out[:, mi], out[:, vi] = reduce_moments(
             tables[:, :, ci], tables[:, :, mi], tables[:, :, vi], 0
         )
     return out
@@ -404,282 +379,13 @@ def summarize(
             f"'max_hist_values' must be a positive int or None (got {max_hist_values!r})"
         )
     if edges is not None:
-        edges = _check_edges(edges, x.device)
-
-    n_rows, n_ch = x.shape[0], x.shape[cdim]
-    reduce_dims = tuple(d for d in range(1, x.ndim) if d != cdim)
-    per_row = math.prod(x.shape[d] for d in reduce_dims)
-    dev, f64 = x.device, torch.float64
+        edges = check_edges(edges, x.device)
     if x.numel() == 0:
-        table = torch.zeros(n_ch + 1, len(FIELDS), dtype=f64, device=dev)
+        dev, f64 = x.device, torch.float64
+        table = torch.zeros(x.shape[cdim] + 1, len(FIELDS), dtype=f64, device=dev)
         inf = torch.tensor([math.inf, -math.inf], dtype=f64, device=dev)
         hist = None if edges is None else torch.zeros(edges.numel() + 1, dtype=f64, device=dev)
         return Summary(table, inf, hist, edges)
-
-    if per_row == 1:
-        # One value per (row, channel), e.g. (N, F) inputs of linear layers: the tensor is
-        # small, so a direct float64 two-pass is both exact and cheaper than the cell path.
-        table, extrema = _table_single_values(x.reshape(n_rows, n_ch))
-        hist = None if edges is None else _histogram(x, edges, max_hist_values)
-        return Summary(table, extrema, hist, edges)
-
-    # Full-size passes are the cost here (each ~0.1-0.2 ms per 2M values on 2 CPU
-    # threads); boolean masks are avoided because building them is ~10x slower.  One work
-    # buffer serves every pass.
-    shape_b = [1] * x.ndim
-    shape_b[cdim] = n_ch
-    chan_dims = (0, *reduce_dims)
-
-    def rsum(t: Tensor) -> Tensor:
-        # a copy when nothing is reduced: t is the work buffer, overwritten below
-        return t.sum(dim=reduce_dims) if reduce_dims else t.clone()
-
-    cells = _cells_all_finite_cpu(x, cdim, reduce_dims, shape_b, chan_dims, rsum)
-    if cells is None:
-        cells = _cells_general(x, cdim, reduce_dims, per_row, shape_b, chan_dims, rsum)
-    s1, s2, nf, shift, lo_c, hi_c = cells
-    s1, s2, nf = (t.reshape(n_rows, n_ch) for t in (s1, s2, nf))
-    parts = (s1, s2, nf, shift.reshape(n_ch).to(f64), lo_c.to(f64), hi_c.to(f64))
-    if x.device.type == "cpu":
-        # ~40 small float64 operations: numpy costs ~1 us each where torch costs ~7 us
-        table, extrema = _finish(*(t.numpy() for t in parts), per_row)
-        table, extrema = torch.from_numpy(table), torch.from_numpy(extrema)
-    else:
-        table, extrema = _finish(*parts, per_row)
-
-    hist = None if edges is None else _histogram(x, edges, max_hist_values)
+    table, extrema, all_finite = table_of(x, cdim)
+    hist = None if edges is None else histogram(x, edges, max_hist_values, all_finite)
     return Summary(table, extrema, hist, edges)
-
-
-def _finish(s1, s2, nf, shift, lo_c, hi_c, per_row: int):
-    """Table and extrema from per-(row, channel) sums about the per-channel ``shift``
-    (float64 torch tensors on any device, or numpy arrays)."""
-    xp = np if isinstance(s1, np.ndarray) else torch
-    cnt = per_row - nf  # finite values per (row, channel)
-    safe = cnt.clip(min=1)
-    m_rc = xp.where(cnt > 0, s1 / safe + shift[None], 0.0)
-    if per_row == 1:  # one value per cell: no within-cell spread (avoid rounding residue)
-        m2_rc = s1 * 0.0
-    else:
-        m2_rc = xp.where(cnt > 0, (s2 - s1 * s1 / safe).clip(min=0), 0.0)
-    # Column C holds each row's layer-wide triple (its channels merged), so one set of
-    # reductions over rows fills the channel rows and the layer row of the table alike.
-    n_r, m_r, m2_r = _reduce_moments(cnt, m_rc, m2_rc, 1)
-    cat = np.concatenate if xp is np else torch.cat
-    cnt = cat([cnt, n_r[:, None]], 1)
-    m_rc = cat([m_rc, m_r[:, None]], 1)
-    m2_rc = cat([m2_rc, m2_r[:, None]], 1)
-    nf = cat([nf, nf.sum(1)[:, None]], 1)
-    n, mean, m2 = _reduce_moments(cnt, m_rc, m2_rc, 0)
-    valid = (cnt > 0) + cnt * 0.0  # float64 in numpy and torch alike
-    v_rc = m2_rc / cnt.clip(min=1)
-    rows, row_mean, row_mean_m2 = _reduce_moments(valid, m_rc, None, 0)
-    _, row_var, row_var_m2 = _reduce_moments(valid, v_rc, None, 0)
-    cols = {
-        "n": n, "mean": mean, "m2": m2, "nonfinite": nf.sum(0), "rows": rows,
-        "row_mean": row_mean, "row_mean_m2": row_mean_m2,
-        "row_var": row_var, "row_var_m2": row_var_m2,
-    }
-    table = xp.stack([cols[k] for k in FIELDS], 1)
-    has = n[:-1] > 0  # extrema over channels that hold finite values
-    lo = xp.where(has, lo_c + shift, math.inf).min()
-    hi = xp.where(has, hi_c + shift, -math.inf).max()
-    return table, xp.stack([lo, hi])
-
-
-def _table_single_values(x: Tensor, *, use_numpy: bool | None = None) -> tuple[Tensor, Tensor]:
-    """Table and extrema of an ``(N, C)`` tensor holding one value per (row, channel).
-    On CPU the float64 arithmetic runs in numpy (~4x cheaper per operation here);
-    ``use_numpy=False`` forces the torch path other devices take (for tests)."""
-    v = x.to(torch.float64)
-    on_cpu = v.device.type == "cpu" if use_numpy is None else use_numpy
-    if on_cpu:
-        v = v.numpy()
-    xp = np if on_cpu else torch
-    with np.errstate(invalid="ignore"):  # inf * 0 is NaN on purpose
-        bad = xp.nan_to_num(v * 0, nan=1.0)  # 1 where non-finite
-    good = 1.0 - bad
-    v = xp.nan_to_num(v, nan=0.0, posinf=0.0, neginf=0.0)
-
-    def moments(dim: int):
-        n = good.sum(dim)
-        mean = v.sum(dim) / n.clip(min=1)
-        dev = (v - (mean[None] if dim == 0 else mean[:, None])) * good
-        return n, mean, (dev * dev).sum(dim)
-
-    n_c, mean_c, m2_c = moments(0)  # per channel: each finite value is its own row
-    n_r, mean_r, m2_r = moments(1)  # per row, across channels
-    n_l, mean_l, m2_l = _reduce_moments(n_c, mean_c, m2_c, 0)
-    valid = (n_r > 0) + n_r * 0.0  # float64 in numpy and torch alike
-    rows, row_mean, row_mean_m2 = _reduce_moments(valid, mean_r, None, 0)
-    _, row_var, row_var_m2 = _reduce_moments(valid, m2_r / n_r.clip(min=1), None, 0)
-    zeros = n_c * 0.0
-    cols = {
-        "n": (n_c, n_l), "mean": (mean_c, mean_l), "m2": (m2_c, m2_l),
-        "nonfinite": (bad.sum(0), bad.sum()), "rows": (n_c, rows),
-        "row_mean": (mean_c, row_mean), "row_mean_m2": (m2_c, row_mean_m2),
-        "row_var": (zeros, row_var), "row_var_m2": (zeros, row_var_m2),
-    }
-    cat = np.concatenate if on_cpu else torch.cat
-    table = xp.stack([cat([c, layer.reshape(1)]) for c, layer in (cols[k] for k in FIELDS)], 1)
-    lo = xp.where(good > 0, v, math.inf).min()
-    hi = xp.where(good > 0, v, -math.inf).max()
-    extrema = xp.stack([lo, hi])
-    if on_cpu:
-        return torch.from_numpy(table), torch.from_numpy(extrema)
-    return table, extrema
-
-
-def _cells_general(x, cdim, reduce_dims, per_row, shape_b, chan_dims, rsum):
-    """Per-(row, channel) sums about a per-channel shift, with non-finite values excluded,
-    branch-free (no host sync): 9 full passes."""
-    f64 = torch.float64
-    buf = torch.mul(x, 0, out=_scratch(x))  # NaN exactly where x is NaN or +-inf, else 0
-    bad = buf.nan_to_num_(nan=1.0)  # 1 where non-finite
-    nf = rsum(bad).to(f64)  # non-finite values per (row, channel)
-    # Per-channel shift: the first finite value of the channel.  Any value of the channel
-    # keeps float32 sums of squares accurate (0 for data near 1e4 would not), and since it
-    # is a real value, writing it where values are non-finite leaves min and max exact.
-    shift = _first_finite(x, bad, nf, cdim, per_row).view(shape_b)
-    d = torch.sub(x, shift, out=buf)
-    d.nan_to_num_(nan=0.0, posinf=0.0, neginf=0.0)  # non-finite -> the shift itself
-    lo_c, hi_c = _channel_minmax(d, cdim, chan_dims)
-    s1 = rsum(d).to(f64)
-    s2 = rsum(d.square_()).to(f64)  # in place: d is not needed afterwards
-    return s1, s2, nf, shift, lo_c, hi_c
-
-
-def _cells_all_finite_cpu(x, cdim, reduce_dims, shape_b, chan_dims, rsum):
-    """CPU fast path (6 full passes): shift by the channel's first value of row 0, sum,
-    and when every (row, channel) sum is finite there is no NaN/inf at all, so the
-    non-finite handling is skipped.  Looking at the sums is no device synchronisation
-    on CPU: the data is on the host already.  Returns None when the general path is needed
-    (non-finite values, overflow, other devices)."""
-    if x.device.type != "cpu":
-        return None
-    f64 = torch.float64
-    first = x[0].movedim(cdim - 1, 0).reshape(x.shape[cdim], -1)[:, 0]
-    if not bool(torch.isfinite(first).all()):
-        return None
-    shift = first.reshape(shape_b)
-    d = torch.sub(x, shift, out=_scratch(x))
-    s1 = rsum(d)
-    if not bool(torch.isfinite(s1).all()):
-        return None  # a NaN/inf somewhere (or an overflow): exact exclusion needed
-    lo_c, hi_c = _channel_minmax(d, cdim, chan_dims)
-    s2 = rsum(d.square_()).to(f64)
-    nf = torch.zeros(s1.shape, dtype=f64)
-    return s1.to(f64), s2, nf, shift, lo_c, hi_c
-
-
-def _first_finite(x: Tensor, bad: Tensor, nf: Tensor, cdim: int, per_row: int) -> Tensor:
-    """Per channel, the first finite value in row-major order (0 if there is none), found
-    from the 0/1 non-finite indicator ``bad`` and the per-(row, channel) non-finite counts
-    ``nf`` with float arithmetic and without sync."""
-    n_ch = x.shape[cdim]
-    empty_cell = (nf.reshape(x.shape[0], n_ch) >= per_row).to(x.dtype)
-    row = empty_cell.argmin(dim=0)  # first row of each channel holding a finite value
-    ch = torch.arange(n_ch, device=x.device)
-    xv, bv = x.movedim(cdim, 1), bad.movedim(cdim, 1)  # (N, C, *rest)
-    cells_x = xv[row, ch].reshape(n_ch, -1)
-    pos = bv[row, ch].reshape(n_ch, -1).argmin(dim=1)  # first finite position in the cell
-    value = cells_x[ch, pos]
-    return torch.nan_to_num(value, nan=0.0, posinf=0.0, neginf=0.0)
-
-
-def _channel_minmax(d: Tensor, cdim: int, chan_dims: tuple[int, ...]) -> tuple[Tensor, Tensor]:
-    """Per-channel min and max of the work buffer ``d``.  Reducing one inner dim of a
-    contiguous ``(N, C, L)`` view is ~2x faster than a multi-dim reduction (and
-    ``aminmax`` with a dim was ~30x slower on CPU)."""
-    n, c = d.shape[0], d.shape[cdim]
-    if d.is_contiguous() and cdim == 1:
-        v, dim = d.reshape(n, c, -1), 2
-    elif d.is_contiguous() and cdim == d.ndim - 1:
-        v, dim = d.reshape(n, -1, c), 1
-    else:
-        return d.amin(dim=chan_dims), d.amax(dim=chan_dims)
-    return v.amin(dim=dim).amin(dim=0), v.amax(dim=dim).amax(dim=0)
-
-
-_SCRATCH = threading.local()
-
-
-def _scratch(x: Tensor) -> Tensor:
-    """A work buffer shaped like ``x``.  On CPU one grow-only buffer per thread is reused:
-    a fresh multi-MB allocation page-faults on every call and cost more than all the
-    arithmetic (measured 1.6 ms of 3.7 ms for 2M values).  Memory held: one buffer the
-    size of the largest tensor summarised on that thread.  Other devices have caching
-    allocators, so they get a plain ``empty``."""
-    if x.device.type != "cpu":
-        return torch.empty(x.shape, dtype=x.dtype, device=x.device)
-    buf = getattr(_SCRATCH, "buf", None)
-    if buf is None or buf.dtype != x.dtype or buf.numel() < x.numel():
-        buf = torch.empty(x.numel(), dtype=x.dtype)
-        _SCRATCH.buf = buf
-    return buf[: x.numel()].view(x.shape)
-
-
-def release_scratch() -> None:
-    """Free the calling thread's CPU work buffer (it is re-created on demand)."""
-    _SCRATCH.buf = None
-
-
-def _check_edges(edges: Tensor, device: torch.device) -> Tensor:
-    if not isinstance(edges, Tensor) or edges.ndim != 1 or edges.numel() < 2:
-        raise ConfigError("'edges' must be a 1-d tensor of at least 2 increasing values")
-    e = edges.detach().to(device=device, dtype=torch.float64)
-    return e
-
-
-def _histogram(x: Tensor, edges: Tensor, max_values: int | None) -> Tensor:
-    """Counts ``[underflow, bins..., overflow]`` of the finite values of a (chunked)
-    subsample of ``x``; non-finite values are dropped."""
-    flat = _subsample(x.reshape(-1), max_values)
-    n_bins = edges.numel() - 1
-    drop = n_bins + 2  # index of the discarded bin for non-finite values
-    if edges.device.type == "cpu" and _is_uniform(edges):
-        # Evenly spaced edges: bin index by arithmetic (~4x faster than a binary search).
-        # Adding x*0 turns every non-finite value (inf included) into NaN -> dropped.
-        lo, width = float(edges[0]), float(edges[-1] - edges[0]) / n_bins
-        pos = (flat - lo).mul_(1.0 / width).add_(flat * 0).floor_().clamp_(-1, n_bins).add_(1)
-        idx = pos.nan_to_num_(nan=float(drop)).long()
-    else:
-        idx = torch.searchsorted(edges.to(flat.dtype), flat, right=True)
-        idx = torch.where(torch.isfinite(flat), idx, torch.full_like(idx, drop))
-    if idx.device.type == "cpu":
-        counts = torch.bincount(idx, minlength=drop + 1).to(torch.float64)
-    else:  # bincount sizes its output from a device max: a host sync; index_add_ is not
-        counts = torch.zeros(drop + 1, dtype=torch.float64, device=idx.device)
-        counts.index_add_(0, idx, torch.ones(idx.shape, dtype=torch.float64, device=idx.device))
-    return counts[:-1]
-
-
-_CHUNK = 64  # values per contiguous piece of the histogram subsample (256 B of float32)
-
-
-def _subsample(flat: Tensor, max_values: int | None) -> Tensor:
-    """At most ``max_values`` values of ``flat``: every ``step``-th contiguous chunk of
-    ``_CHUNK`` values, ``step`` a prime (so the pick does not alias with power-of-two
-    layouts such as channel planes).  Chunks touch few cache lines: a plain strided pick
-    read most of a large tensor from memory again (~1.5 ms for 8 MB on 2 CPU threads)."""
-    n = flat.numel()
-    if max_values is None or n <= max_values:
-        return flat
-    n_chunks = n // _CHUNK
-    want = max_values // _CHUNK
-    if want < 1 or n_chunks < 2 * want:
-        return flat[:: -(-n // max_values)].contiguous()
-    step = _next_prime(-(-n_chunks // want))
-    return flat[: n_chunks * _CHUNK].view(n_chunks, _CHUNK)[::step].reshape(-1)
-
-
-def _next_prime(k: int) -> int:
-    k = max(k, 2)
-    while any(k % d == 0 for d in range(2, math.isqrt(k) + 1)):
-        k += 1
-    return k
-
-
-def _is_uniform(edges: Tensor) -> bool:
-    w = edges[1:] - edges[:-1]
-    return bool((w - w[0]).abs().max() <= 1e-9 * w[0].abs())

@@ -266,7 +266,7 @@ def test_merge_equals_concatenation(
 def test_torch_and_numpy_tails_agree():
     """On CPU the small float64 tail runs in numpy; other devices (CUDA) run the same code
     in torch.  Run the torch variant on CPU to check that both give the same table."""
-    from shiftwatch.summary import _finish, _table_single_values
+    from shiftwatch.cells import _finish, _table_single_values
 
     g = torch.Generator().manual_seed(11)
     n, c, per_row = 7, 5, 12
@@ -288,3 +288,39 @@ def test_torch_and_numpy_tails_agree():
     assert b_table.dtype == torch.float64
     np.testing.assert_allclose(a_table.numpy(), b_table.numpy(), rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(a_ext.numpy(), b_ext.numpy(), rtol=1e-12)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    rows=st.integers(1, 9),
+    channels=st.integers(1, 6),
+    inner=st.sampled_from([(2, 3), (4, 4), (1, 7), (5, 1)]),
+    offset=st.sampled_from([0.0, 3.0, -250.0, 1e4]),
+    scale=st.sampled_from([1e-3, 1.0, 40.0]),
+    seed=st.integers(0, 2**31 - 1),
+)
+def test_dense_fast_path_equals_general_path(rows, channels, inner, offset, scale, seed):
+    """The CPU fast path (contiguous, all finite: vector_norm, plain means) and the
+    general branch-free path (taken for a non-contiguous view of the same cells) agree.
+    Both are also checked against numpy float64 above; this pins them to each other."""
+    from shiftwatch.cells import _single_values_dense, _table_single_values
+
+    g = torch.Generator().manual_seed(seed)
+    x = torch.randn(rows, channels, *inner, generator=g) * scale + offset
+    edges = make_edges(offset - 2 * scale, offset + 2 * scale, 10)
+    fast = summarize(x, edges=edges, max_hist_values=None)
+    general = summarize(x.transpose(2, 3), edges=edges, max_hist_values=None)  # not contiguous
+    # float32 rounding of the per-cell sums of squares differs between the two (norm vs
+    # square-and-sum): ~1e-6 relative on M2-type columns, far less elsewhere
+    np.testing.assert_allclose(fast.table.numpy(), general.table.numpy(), rtol=1e-5,
+                               atol=1e-9 * max(1.0, abs(offset)) * scale)
+    assert fast.extrema.tolist() == pytest.approx(general.extrema.tolist(), rel=1e-7)
+    assert fast.hist.sum() == general.hist.sum() == x.numel()
+    # random normal values land within one float32 rounding of a bin edge with
+    # negligible probability, so the counts agree exactly
+    assert fast.hist.tolist() == general.hist.tolist()
+    v = x.reshape(rows, -1)
+    a_table, a_ext = _single_values_dense(v.double().numpy())
+    b_table, b_ext = _table_single_values(v)
+    np.testing.assert_allclose(a_table, b_table.numpy(), rtol=1e-9, atol=1e-9 * scale)
+    np.testing.assert_allclose(a_ext, b_ext.numpy(), rtol=1e-12)
