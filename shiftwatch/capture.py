@@ -53,7 +53,7 @@ from torch.nn.modules.conv import _ConvNd
 from torch.nn.modules.instancenorm import _InstanceNorm
 
 from .errors import ConfigError, ShiftWatchWarning, UnsupportedInputError
-from .summary import Summary, summarize
+from .summary import Summary, summarize_staged
 
 __all__ = [
     "DEFAULT_TYPES",
@@ -332,22 +332,25 @@ class Tap:
             self._channel_dim = channel_dim_for(module, x.ndim)
         if self.edges is not None and self.edges.device != x.device:
             self.edges = self.edges.to(x.device)  # once, not a copy per call
+        channels = x.shape[self._channel_dim] if x.ndim > 1 else x.numel()
+        if self.channels is None:
+            self.channels = channels
+        elif channels != self.channels:
+            self._warn_once(
+                "channels", f"it has {channels} channels where {self.channels} were expected"
+            )
+            return
         try:
-            s = summarize(
+            # stage one (every pass over x) now; the small float64 tails of all layers
+            # run together in take(), at step(), where that code is warm
+            pending = summarize_staged(
                 x, channel_dim=self._channel_dim, edges=self.edges,
                 max_hist_values=gate.max_hist_values,
             )
         except (ConfigError, UnsupportedInputError) as exc:
             self._warn_once("summarize", f"it could not be summarised ({exc})")
             return
-        if self.channels is None:
-            self.channels = s.channels
-        elif s.channels != self.channels:
-            self._warn_once(
-                "channels", f"it has {s.channels} channels where {self.channels} were expected"
-            )
-            return
-        self.buckets.setdefault(phase, []).append(s)
+        self.buckets.setdefault(phase, []).append(pending)
 
     def _warn_once(self, key: str, why: str) -> None:
         if key in self._warned:
@@ -364,9 +367,10 @@ class Tap:
     # collection -------------------------------------------------------------
     def take(self, phase: str) -> Summary | None:
         """The exact merge of this step's summaries of ``phase`` (``None`` if none)."""
-        items = self.buckets.pop(phase, None)
-        if not items:
+        pending = self.buckets.pop(phase, None)
+        if not pending:
             return None
+        items = [finish() for finish in pending]
         return items[0] if len(items) == 1 else Summary.merge_all(items)
 
 

@@ -35,14 +35,14 @@ variances (``M2 / n``) unless a name says ``unbiased``.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import torch
 from torch import Tensor
 
-from .cells import FIELDS, check_edges, histogram, reduce_moments, release_scratch, table_of
+from .cells import FIELDS, check_edges, histogram, reduce_moments, release_scratch, table_parts
 from .errors import ConfigError, UnsupportedInputError
 
 __all__ = [
@@ -53,6 +53,7 @@ __all__ = [
     "merge_tables",
     "release_scratch",
     "summarize",
+    "summarize_staged",
 ]
 
 _IX = {name: i for i, name in enumerate(FIELDS)}
@@ -356,6 +357,23 @@ def summarize(
         UnsupportedInputError: integer, boolean or complex dtype.
         ConfigError: bad ``channel_dim``, ``edges`` or ``max_hist_values``.
     """
+    return summarize_staged(
+        x, channel_dim=channel_dim, edges=edges, max_hist_values=max_hist_values
+    )()
+
+
+def summarize_staged(
+    x: Tensor,
+    *,
+    channel_dim: int = 1,
+    edges: Tensor | None = None,
+    max_hist_values: int | None = 65536,
+) -> Callable[[], Summary]:
+    """:func:`summarize` in two stages: every pass over ``x`` (and every check of the
+    arguments) now, the small float64 tail when the returned function is called.  The
+    function holds small per-channel tensors and the histogram, never ``x``.  The monitor
+    runs stage one in its forward hooks and the tails of all layers together at
+    ``step()``.  Same arguments and errors as :func:`summarize`."""
     _check_dtype(x)
     x = x.detach()
     if x.dtype in (torch.float16, torch.bfloat16):
@@ -385,7 +403,13 @@ def summarize(
         table = torch.zeros(x.shape[cdim] + 1, len(FIELDS), dtype=f64, device=dev)
         inf = torch.tensor([math.inf, -math.inf], dtype=f64, device=dev)
         hist = None if edges is None else torch.zeros(edges.numel() + 1, dtype=f64, device=dev)
-        return Summary(table, inf, hist, edges)
-    table, extrema, all_finite = table_of(x, cdim)
+        empty = Summary(table, inf, hist, edges)
+        return lambda: empty
+    finish, all_finite = table_parts(x, cdim)
     hist = None if edges is None else histogram(x, edges, max_hist_values, all_finite)
-    return Summary(table, extrema, hist, edges)
+
+    def complete() -> Summary:
+        table, extrema = finish()
+        return Summary(table, extrema, hist, edges)
+
+    return complete

@@ -4,7 +4,7 @@ TensorBoard's ``HistogramProto`` keeps, per bucket, only the right edge
 (``bucket_limit``) and the count; it draws the first bucket from ``min`` and the last one
 up to ``max``.  :class:`HistogramData` maps the core's fixed-edge histogram (with an
 underflow and an overflow bin) onto that form without looking at the input again.
-Standard library only; the proto class is passed in by the sink.
+NumPy for the checks; the proto class is passed in by the sink.
 """
 
 from __future__ import annotations
@@ -14,18 +14,20 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+import torch
+
 if TYPE_CHECKING:
     from ..summary import Summary
 
 __all__ = ["HistogramData"]
 
 
-def _floats(values: Any, name: str) -> tuple[float, ...]:
-    tolist = getattr(values, "tolist", None)
-    if callable(tolist):  # numpy array, torch tensor (copied to the host)
-        values = tolist()
+def _floats(values: Any, name: str) -> np.ndarray:
+    if isinstance(values, torch.Tensor):
+        values = values.detach().cpu()
     try:
-        return tuple(float(v) for v in values)
+        return np.asarray(values, dtype=np.float64).reshape(-1)
     except (TypeError, ValueError) as exc:
         raise ValueError(f"'{name}' must be a sequence of numbers ({exc})") from exc
 
@@ -60,23 +62,22 @@ class HistogramData:
     sum_squares: float
 
     def __post_init__(self) -> None:
+        # vectorised checks: the monitor builds one of these per layer and sampled step
         edges = _floats(self.edges, "edges")
         counts = _floats(self.counts, "counts")
-        if len(edges) < 2:
-            raise ValueError(f"'edges' must hold at least 2 values (got {len(edges)})")
-        if len(counts) != len(edges) + 1:
+        if edges.size < 2:
+            raise ValueError(f"'edges' must hold at least 2 values (got {edges.size})")
+        if counts.size != edges.size + 1:
             raise ValueError(
-                f"'counts' must hold len(edges) + 1 = {len(edges) + 1} values "
-                f"[underflow, bins..., overflow] (got {len(counts)})"
+                f"'counts' must hold len(edges) + 1 = {edges.size + 1} values "
+                f"[underflow, bins..., overflow] (got {counts.size})"
             )
-        if not all(math.isfinite(e) for e in edges) or any(
-            b <= a for a, b in zip(edges, edges[1:], strict=False)
-        ):
+        if not (np.isfinite(edges).all() and (np.diff(edges) > 0).all()):
             raise ValueError("'edges' must be finite and strictly increasing")
-        if not all(c >= 0 and math.isfinite(c) for c in counts):
+        if not (np.isfinite(counts).all() and (counts >= 0).all()):
             raise ValueError("'counts' must be finite and non-negative")
-        object.__setattr__(self, "edges", edges)
-        object.__setattr__(self, "counts", counts)
+        object.__setattr__(self, "edges", tuple(edges.tolist()))
+        object.__setattr__(self, "counts", tuple(counts.tolist()))
         for name in ("min", "max", "num", "sum", "sum_squares"):
             object.__setattr__(self, name, float(getattr(self, name)))
 
