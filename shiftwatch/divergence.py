@@ -134,34 +134,36 @@ def design_effect(table: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     standard error of the mean is than independence would give.  Returns ``(deff, dof)``;
     ``dof = rows - 1`` (0 where it cannot be estimated, and then ``deff = 1``).
     """
-    c = _cols(table)
-    n, rows = c["n"], c["rows"]
-    var = np.where(n > 0, np.maximum(c["m2"], 0) / np.maximum(n, 1), 0.0)
-    dof = np.maximum(rows - 1, 0)
-    var_rm = np.where(dof > 0, c["row_mean_m2"] / np.maximum(dof, 1), 0.0)
-    ok = (dof > 0) & (var > _TINY * np.maximum(1.0, c["mean"] ** 2))
-    deff = np.where(ok, var_rm * n / np.maximum(rows, 1) / np.where(ok, var, 1.0), 1.0)
-    return deff, np.where(ok, dof, 0.0)
+    t = _spread_terms(np.asarray(table, dtype=np.float64))
+    return t["deff"], t["dof"]
 
 
-def _var_spread(table: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-row ingredients of the variance's standard error, relative to the variance V:
-    ``phi = Var(within-row variances) / V^2`` and ``beta = Var(row means) / V``, with
-    their dof (rows - 1; 0 where undefined).  For a summary of R rows,
-    ``SE(V)^2 / V^2 ~ (phi + 2 beta^2) / R``: the within-row part from the observed spread
-    (includes correlation and heavy tails), the between-row part from the Gaussian formula
-    for a variance of R means.  Rows of one value give phi = 0, beta = 1, i.e. the Gaussian
-    ``2 / n``."""
-    c = _cols(table)
-    n, rows = c["n"], c["rows"]
+def _spread_terms(t: np.ndarray) -> dict[str, np.ndarray]:
+    """Per table row (any leading shape): the design effect of the mean ``deff``, and
+    the ingredients of the variance's standard error relative to the variance V,
+    ``phi = Var(within-row variances) / V^2`` and ``beta = Var(row means) / V``, all with
+    one dof (rows - 1; 0 where undefined, and then ``deff = 1``, ``phi = 0``,
+    ``beta = 1``).  For a summary of R rows, ``SE(V)^2 / V^2 ~ (phi + 2 beta^2) / R``: the
+    within-row part from the observed spread (includes correlation and heavy tails), the
+    between-row part from the Gaussian formula for a variance of R means.  Rows of one
+    value give phi = 0, beta = 1, i.e. the Gaussian ``2 / n``."""
+    n, rows, m2 = t[..., _IX["n"]], t[..., _IX["rows"]], t[..., _IX["m2"]]
+    mean = t[..., _IX["mean"]]
     dof = np.maximum(rows - 1, 0)
-    var = np.where(n > 0, np.maximum(c["m2"], 0) / np.maximum(n, 1), 0.0)
-    ok = (dof > 0) & (var > _TINY * np.maximum(1.0, c["mean"] ** 2))
+    var = np.where(n > 0, np.maximum(m2, 0) / np.maximum(n, 1), 0.0)
+    ok = (dof > 0) & (var > _TINY * np.maximum(1.0, mean * mean))
     safe_var = np.where(ok, var, 1.0)
+    safe_rows = np.maximum(rows, 1)
+    rm_m2 = t[..., _IX["row_mean_m2"]]
+    var_rm = rm_m2 / np.maximum(dof, 1)
     multi = n >= 1.5 * rows  # rows hold several values: within-row spread is meaningful
-    phi = np.where(ok & multi, c["row_var_m2"] / np.maximum(dof, 1) / safe_var**2, 0.0)
-    beta = np.where(ok, c["row_mean_m2"] / np.maximum(rows, 1) / safe_var, 1.0)
-    return phi, beta, np.where(ok, dof, 0.0)
+    return {
+        "deff": np.where(ok, var_rm * n / safe_rows / safe_var, 1.0),
+        "phi": np.where(ok & multi, t[..., _IX["row_var_m2"]] / np.maximum(dof, 1)
+                        / (safe_var * safe_var), 0.0),
+        "beta": np.where(ok, rm_m2 / safe_rows / safe_var, 1.0),
+        "dof": np.where(ok, dof, 0.0),
+    }
 
 
 def _chi2_upper(dof: np.ndarray, z: float = _Z99) -> np.ndarray:
@@ -170,29 +172,28 @@ def _chi2_upper(dof: np.ndarray, z: float = _Z99) -> np.ndarray:
     return (1 - 2 / (9 * k) + z * np.sqrt(2 / (9 * k))) ** 3
 
 
-def _pooled(values_dofs, current):
-    num = sum(v * d for v, d in values_dofs)
-    den = sum(d for _, d in values_dofs)
-    pooled = np.where(den > 0, num / np.maximum(den, 1e-300), np.nan)
-    cur_v, cur_d = current
-    # the current sample's own estimate overrides when significantly larger
-    big = (cur_d > 0) & np.isfinite(pooled) & (cur_v > pooled * _chi2_upper(cur_d))
-    return np.where(big, cur_v, pooled), den
-
-
 class _Noise:
-    """Standard errors of mean and variance for both sides of a comparison."""
+    """Standard errors of mean and variance for both sides of a comparison.
+
+    Each spread term is pooled over the tables (current, other side, pool) by degrees of
+    freedom; the current sample's own estimate overrides when significantly larger
+    (99% chi-square upper bound).  All tables are stacked and scored in one pass."""
 
     def __init__(self, cur: np.ndarray, ref: np.ndarray, pool: Sequence[np.ndarray]):
-        tables = [cur, ref, *pool]
-        deffs = [design_effect(t) for t in tables]
-        deff, _ = _pooled(deffs, deffs[0])
-        self.deff = np.maximum(np.where(np.isfinite(deff), deff, 1.0), 1.0)
-        spreads = [_var_spread(t) for t in tables]
-        phi, _ = _pooled([(p, d) for p, _, d in spreads], (spreads[0][0], spreads[0][2]))
-        beta, _ = _pooled([(b, d) for _, b, d in spreads], (spreads[0][1], spreads[0][2]))
-        self.phi = np.where(np.isfinite(phi), phi, 0.0)
-        self.beta = np.where(np.isfinite(beta), beta, 1.0)
+        t = _spread_terms(np.stack(np.broadcast_arrays(cur, ref, *pool)))
+        dof = t["dof"]
+        den = dof.sum(0)
+        cur_dof = dof[0]
+        upper = _chi2_upper(cur_dof)
+        pooled = {}
+        for name, fallback in (("deff", 1.0), ("phi", 0.0), ("beta", 1.0)):
+            v = t[name]
+            p = np.where(den > 0, (v * dof).sum(0) / np.maximum(den, 1e-300), np.nan)
+            big = (cur_dof > 0) & np.isfinite(p) & (v[0] > p * upper)
+            p = np.where(big, v[0], p)
+            pooled[name] = np.where(np.isfinite(p), p, fallback)
+        self.deff = np.maximum(pooled["deff"], 1.0)
+        self.phi, self.beta = pooled["phi"], pooled["beta"]
 
     def se2_mean(self, c) -> np.ndarray:
         return self.deff * c["var"] / np.maximum(c["n"], 1)
