@@ -124,9 +124,9 @@ def _dense_cpu(x: Tensor, cdim: int, per_row: int) -> Finisher | None:
     """Stage one for a contiguous CPU tensor in which every value is finite, in six
     full-size passes: shift by the channel's first value of row 0, per-cell sum, square
     in place and sum, and the layer's min and max.  Returns ``None`` when the input is not
-    contiguous in a supported layout, or holds a NaN/inf (then a cell sum is not finite),
-    so the general path runs instead.  Looking at the sums is no device synchronisation
-    on CPU: the data is on the host already.
+    contiguous in a supported layout, or holds a NaN/inf (then the min or the max is not
+    finite), so the general path runs instead.  Looking at them is no device
+    synchronisation on CPU: the data is on the host already.
 
     Each torch call costs ~5-15 us of dispatch when a training step has just evicted the
     caches, so this path keeps their number small."""
@@ -139,23 +139,22 @@ def _dense_cpu(x: Tensor, cdim: int, per_row: int) -> Finisher | None:
     else:
         v, red = x.view(n, per_row, c), 1
         first = v[0, :1, :]  # (1, C)
+    lo, hi = x.min(), x.max()  # NaN propagates; inf stays: both finite iff all values are
+    lo_f, hi_f = float(lo), float(hi)
+    if not (math.isfinite(lo_f) and math.isfinite(hi_f)):
+        return None  # exact exclusion of NaN/inf needed: the general path
     shift = first.numpy().reshape(-1).astype(np.float64)  # a copy
-    if not math.isfinite(float(shift.sum())):
-        return None
     d = torch.sub(v, first, out=_scratch(v))
     s1 = d.sum(red)
-    if not math.isfinite(float(s1.sum())):
-        return None  # a NaN/inf somewhere (or an overflow): exact exclusion needed
     # squares in place, then a cascade sum: torch.linalg.vector_norm would be one pass
     # fewer but accumulates naively (measured 2e-5 relative error at 65,536 values per
     # cell against 2e-7 here)
     s2 = d.square_().sum(red)
-    lo, hi = x.min(), x.max()
 
     def finish() -> tuple[Tensor, Tensor]:
         table = _finish_dense(s1.numpy().astype(np.float64), s2.numpy().astype(np.float64),
                               shift, per_row)
-        return torch.from_numpy(table), torch.tensor([float(lo), float(hi)], dtype=torch.float64)
+        return torch.from_numpy(table), torch.tensor([lo_f, hi_f], dtype=torch.float64)
 
     return finish
 
