@@ -81,9 +81,9 @@ class RunData:
         ai = AGAINST.index(against)
         L, A, M = len(self.layers), len(AGAINST), len(METRICS)
         out: dict[str, np.ndarray] = {}
-        for key in ("samples", "peak_ratio", "peak_step", "peak_value", "peak_noise",
-                    "vpeak_value", "vpeak_step", "vpeak_noise"):
-            out[key] = getattr(acc, key).reshape(L, A, M)[:, ai]
+        for name in ("samples", "peak_ratio", "peak_step", "peak_value", "peak_noise",
+                     "vpeak_value", "vpeak_step", "vpeak_noise"):
+            out[name] = getattr(acc, name).reshape(L, A, M)[:, ai]
         qh = acc.qhist.reshape(L, A, M, 3, -1)[:, ai]
         for qi, name in enumerate(("value", "noise", "ratio")):
             out[f"median_{name}"] = quantile(qh[:, :, qi], 0.5)
