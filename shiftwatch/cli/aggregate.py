@@ -37,8 +37,9 @@ __all__ = ["AGAINST", "CHANNEL_METRICS", "METRICS", "PHASES", "Grid", "PhaseAcc"
 METRICS: tuple[str, ...] = ("mean_shift", "log_std_ratio", "gauss_kl", "hist_kl", "js", "psi", "w1")
 #: Metrics that also have a per-channel view.
 CHANNEL_METRICS: tuple[str, ...] = ("mean_shift", "log_std_ratio", "gauss_kl")
-#: Comparisons: against the previous sample and against the reference.
-AGAINST: tuple[str, ...] = ("previous", "reference")
+#: Comparisons: against the previous sample, the reference, and (val records only) the
+#: latest training sample.
+AGAINST: tuple[str, ...] = ("previous", "reference", "train")
 PHASES: tuple[str, ...] = ("train", "val")
 _MIDX = {m: i for i, m in enumerate(METRICS)}
 _CIDX = {m: i for i, m in enumerate(CHANNEL_METRICS)}
@@ -142,7 +143,7 @@ _FIELDS: dict[str, tuple[str, Any, float, str]] = {
 }
 
 
-_AK = ((0, "vs_previous"), (1, "vs_reference"))
+_AK = ((0, "vs_previous"), (1, "vs_reference"), (2, "vs_train"))
 _K_METRIC = ("value", "noise", "ratio")
 _K_CHANNEL = ("max_ratio", "max")
 _IG_METRIC, _IG_CHANNEL = itemgetter(*_K_METRIC), itemgetter(*_K_CHANNEL)

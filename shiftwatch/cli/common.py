@@ -53,8 +53,9 @@ def add_view_options(parser: argparse.ArgumentParser, *, metric_default: str = "
     parser.add_argument("--phase", choices=PHASES, default="train",
                         help="training-mode or eval-mode samples (default: train)")
     parser.add_argument("--against", choices=AGAINST, default="reference",
-                        help="shift against the reference or against the previous sample "
-                             "(default: reference)")
+                        help="shift against the reference, against the previous sample, or "
+                             "(with --phase val) against the latest training sample: the "
+                             "train/eval mismatch (default: reference)")
     choices = (("any",) if metric_default == "any" else ()) + METRICS
     parser.add_argument("--metric", choices=choices, default=metric_default,
                         help=f"metric to rank by (default: {metric_default}"
@@ -67,6 +68,9 @@ def load(path: str, args: argparse.Namespace) -> RunData:
     workers = getattr(args, "workers", None)
     if workers is not None and workers < 1:
         raise LogError(f"'--workers' must be at least 1 (got {workers})")
+    if getattr(args, "against", None) == "train" and getattr(args, "phase", None) != "val":
+        raise LogError("'--against train' compares eval-mode samples with the latest "
+                       "training sample; add '--phase val'")
     return read_run(path, workers=workers)
 
 
