@@ -1,10 +1,11 @@
 """Rules: when a measured shift becomes an alert.
 
-A :class:`Rule` names a metric, what it is compared against (the previous sample or the
-reference), a threshold (a multiple of the noise floor, or a raw metric value), the layers
-it applies to, patience (consecutive samples over the threshold before it fires),
-cooldown (samples it stays quiet after firing), severity (``warn`` or ``fail``) and the
-phase (``train``, ``val`` or ``any``) whose samples it judges.
+A :class:`Rule` names a metric, what it is compared against (the previous sample, the
+reference, or -- for eval-mode samples -- the latest training sample), a threshold (a
+multiple of the noise floor, or a raw metric value), the layers it applies to, patience
+(consecutive samples over the threshold before it fires), cooldown (samples it stays
+quiet after firing), severity (``warn`` or ``fail``) and the phase (``train``, ``val`` or
+``any``) whose samples it judges.
 
 Rules come from Python (:class:`Rule`, :func:`default_rules`) or a TOML file
 (:func:`load_rules`, stdlib :mod:`tomllib`)::
@@ -15,7 +16,8 @@ Rules come from Python (:class:`Rule`, :func:`default_rules`) or a TOML file
     name = "fc-input-drift"
     metric = "w1"                # mean_shift, log_std_ratio, gauss_kl, hist_kl, js, psi,
                                  # w1, nonfinite, collapse
-    against = "reference"        # or "previous"
+    against = "reference"        # or "previous"; "train" (phase = "val" only): the
+                                 # eval-mode sample against the latest training sample
     threshold = 8.0
     units = "noise"              # threshold as a multiple of the noise floor, or "raw"
     min_raw = 0.2                # and at least this large in the metric's own units
@@ -68,7 +70,7 @@ ENTRY = "<entry>"
 #: Metrics a rule can use: the shift metrics plus two built-in checks.
 RULE_METRICS: tuple[str, ...] = (*METRICS, "nonfinite", "collapse")
 _CHECKS = ("nonfinite", "collapse")
-AGAINST = ("previous", "reference")
+AGAINST = ("previous", "reference", "train")
 UNITS = ("noise", "raw")
 VIEWS = ("layer", "channels")
 SEVERITIES = ("warn", "fail")
@@ -103,8 +105,11 @@ class Rule:
         min_raw: the metric must also reach this size in its own units (with
             ``units="noise"``: a shift far beyond noise but tiny in size -- as large
             batches make possible -- stays quiet).  0 disables it.
-        against: ``"previous"`` (the last sample of the same phase) or ``"reference"``;
-            ``None`` for ``nonfinite``/``collapse``, which look at the sample alone.
+        against: ``"previous"`` (the last sample of the same phase), ``"reference"``, or
+            ``"train"`` (the latest training sample; for ``phase="val"`` rules only: the
+            train/eval mismatch plus the sampling difference of the two batches, see the
+            README's event-log schema); ``None`` for ``nonfinite``/``collapse``, which look
+            at the sample alone.
         units: ``"noise"``: the value is the metric divided by its noise floor;
             ``"raw"``: the metric in its own units.  The checks always use ``"raw"``.
         view: ``"layer"`` (layer-wide) or ``"channels"`` (the worst channel; moment
@@ -153,6 +158,12 @@ class Rule:
                 raise ConfigError(f"{where}: 'view' must be 'layer' for metric {self.metric!r}")
         else:
             _choice(where, "against", self.against, AGAINST)
+            if self.against == "train" and self.phase != "val":
+                raise ConfigError(
+                    f"{where}: 'against' 'train' compares eval-mode (val) samples with the "
+                    f"latest training sample, so it needs 'phase' 'val' (got {self.phase!r}); "
+                    "set phase = 'val'"
+                )
             _choice(where, "units", self.units, UNITS)
             _choice(where, "view", self.view, VIEWS)
             if self.view == "channels" and self.metric not in MOMENT_METRICS:
@@ -361,7 +372,8 @@ class Alert:
 class Observation:
     """One sampled step of one phase, all layers at once (arrays over layers ``L``).
 
-    ``value``/``noise``/``ratio`` map ``"previous"``/``"reference"`` to ``(len(METRICS), L)``
+    ``value``/``noise``/``ratio`` map ``"previous"``/``"reference"`` (and ``"train"`` for
+    val samples that have a training sample to compare with) to ``(len(METRICS), L)``
     float arrays (NaN where not available); ``channel`` maps the same keys to a dict of
     ``(len(MOMENT_METRICS), L)`` arrays: ``max_ratio``, ``worst`` (channel with the largest
     ratio), ``worst_value``, ``worst_noise``, ``max_value``, ``argmax_value``.

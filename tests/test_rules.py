@@ -86,7 +86,7 @@ def test_toml_rules_load_and_validate(tmp_path):
         ('[[rule]]\nmetric = "js"\nthreshold = 4\ntreshold = 5\n',
          r"rule 1: unknown key 'treshold'; allowed keys: metric, threshold, min_raw, against"),
         ('[[rule]]\nmetric = "js"\nthreshold = 4\nagainst = "past"\n',
-         r"rule 1: 'against' must be one of 'previous', 'reference' \(got 'past'\)"),
+         r"rule 1: 'against' must be one of 'previous', 'reference', 'train' \(got 'past'\)"),
         ('[[rule]]\nname = "x"\nmetric = "js"\nthreshold = "high"\n',
          r"rule 1 \('x'\): 'threshold' must be a finite number"),
         ('[[rule]]\nthreshold = 4\n', r"rule 1: 'metric' is required"),
