@@ -19,7 +19,9 @@ Per sampled step and phase (``"train"``, ``"val"`` for eval-mode forwards): ever
 summary is packed into one flat tensor, passed through :meth:`ShiftMonitor._reduce` (the one
 seam for merging across processes; identity unless a ``reducer`` is given), moved to the
 host in one transfer, compared with the previous sample of the phase and with the
-reference, judged by the rules and written to the event log, TensorBoard and ``logging``.
+reference (a ``"val"`` sample also with the latest training sample: ``vs_train``, the
+train/eval mismatch plus the sampling difference of the two batches; README, event-log
+schema), judged by the rules and written to the event log, TensorBoard and ``logging``.
 
 Under ``torch.distributed`` (issue 4; :mod:`shiftwatch.distributed`): when no ``reducer`` is
 given and a process group of more than one rank is initialised, every sampled step merges
@@ -225,6 +227,7 @@ class ShiftMonitor:
         self._step = 0
         self._samples = {p: 0 for p in PHASES}
         self._prev: dict[str, np.ndarray] = {}
+        self._prev_step: dict[str, int] = {}  # step of each phase's previous sample
         self._ref = Reference(target=self.reference_steps)
         self._layout: Layout | None = None
         self._ranges: np.ndarray | None = None
@@ -498,6 +501,10 @@ class ShiftMonitor:
             others["previous"] = lay.split(self._prev[phase])
         if self._ref.ready:
             others["reference"] = ref
+        if phase == "val" and "train" in self._prev:
+            # train/eval mismatch: an eval-mode sample against the latest training sample
+            # (of this step when both were captured: PHASES puts train first)
+            others["train"] = lay.split(self._prev["train"])
         results = {}
         if others:
             scored = compare_all(cur, list(others.values()), lay, self._ranges, pool=ref)
@@ -506,6 +513,7 @@ class ShiftMonitor:
         record = self._step_record(phase, step, stats, results)
         # state updates: previous sample, reference pooling, histogram edges
         self._prev[phase] = flat
+        self._prev_step[phase] = step
         self._samples[phase] += 1
         if phase == "train":
             if not self._ref.ready and self._ref.source == "pooled":
@@ -542,6 +550,8 @@ class ShiftMonitor:
                 "std": s["std"][j], "min": s["min"][j], "max": s["max"][j],
                 "vs_previous": None, "vs_reference": None,
             }
+            if phase == "val":
+                entry["vs_train"] = None
             channels: dict[str, Any] = {}
             for against, (val, noi, rat, ch) in conv.items():
                 entry[f"vs_{against}"] = {
@@ -557,7 +567,11 @@ class ShiftMonitor:
             if channels:
                 entry["channels"] = channels
             layers[name] = entry
-        return {"kind": "step", "step": step, "phase": phase, "layers": layers}
+        record: dict[str, Any] = {"kind": "step", "step": step, "phase": phase}
+        if phase == "val":  # the training sample vs_train compares with (None: none yet)
+            record["train_step"] = self._prev_step.get("train")
+        record["layers"] = layers
+        return record
 
     # ------------------------------------------------------------------ judge / effect
     def judge(self, obs: Observation) -> Decision:
@@ -611,7 +625,7 @@ class ShiftMonitor:
         tags = self._tb_tags.get(phase)
         if tags is None:
             tags = self._tb_tags[phase] = {
-                "ratio": {(a, m, n): scalar_tag(phase, a, m, n) for a in ("previous", "reference")
+                "ratio": {(a, m, n): scalar_tag(phase, a, m, n) for a in _tb_against(phase)
                           for m in METRICS for n in lay.names},
                 "stat": {(k, n): stat_tag(phase, k, n) for k in _TB_STATS for n in lay.names},
                 "hist": {n: histogram_tag(phase, n) for n in lay.names},
@@ -621,7 +635,7 @@ class ShiftMonitor:
             for k in _TB_STATS:
                 if entry[k] is not None:
                     scalars[tags["stat"][(k, name)]] = entry[k]
-            for a in ("previous", "reference"):
+            for a in _tb_against(phase):
                 vs = entry[f"vs_{a}"]
                 if vs:
                     for m, d in vs.items():
@@ -680,6 +694,7 @@ class ShiftMonitor:
             "ranges": None if self._ranges is None else self._ranges.tolist(),
             "entry": self._entry,
             "previous": {p: t(f) for p, f in self._prev.items()},
+            "previous_steps": dict(self._prev_step),
             "reference": {"flat": t(self._ref.flat), "steps": list(self._ref.steps),
                           "source": self._ref.source, "path": self._ref.path},
             "judge": self._judge.state_dict(),
@@ -720,6 +735,8 @@ class ShiftMonitor:
         if self._entry is not None:
             self._capture.stop_entry_detection()
         self._prev = {p: arr(f) for p, f in state["previous"].items()}
+        # states saved before vs_train existed lack the steps: train_step then reads null
+        self._prev_step = {p: int(v) for p, v in state.get("previous_steps", {}).items()}
         r = state["reference"]
         if self._ref.source != "file":
             self._ref = Reference(target=self.reference_steps, flat=arr(r["flat"]),
@@ -765,6 +782,11 @@ class ShiftMonitor:
         state = "closed" if self._closed else f"step {self._step}"
         return (f"ShiftMonitor({len(self.layers)} layers, every_n_steps={self.every_n_steps}, "
                 f"{state}, {len(self.alerts)} alerts)")
+
+
+def _tb_against(phase: str) -> tuple[str, ...]:
+    """Comparisons a step record of ``phase`` carries (``vs_train``: val records only)."""
+    return ("previous", "reference", "train") if phase == "val" else ("previous", "reference")
 
 
 def _open_event_log(log_dir: Path) -> EventLog:

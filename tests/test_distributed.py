@@ -297,6 +297,12 @@ def monitor_batch(step: int):
     return x, x[:, :2].sum(1, keepdim=True)
 
 
+def val_batch(step: int) -> torch.Tensor:
+    """Held-out inputs for an eval-mode pass at a sampled step (never shifted)."""
+    g = torch.Generator().manual_seed(5000 + step)
+    return torch.randn(GLOBAL_BATCH, 8, generator=g, dtype=torch.float64)
+
+
 def train_monitored(log_dir: Path, rows: slice, wrap=None) -> tuple[ShiftMonitor, int]:
     model = monitor_model()
     net = model if wrap is None else wrap(model)
@@ -309,6 +315,11 @@ def train_monitored(log_dir: Path, rows: slice, wrap=None) -> tuple[ShiftMonitor
         loss = torch.nn.functional.mse_loss(net(x[rows]), y[rows])
         opt.zero_grad()
         loss.backward()
+        if monitor.is_sampled(step):  # an eval pass: phase "val", compared vs_train too
+            model.eval()
+            with torch.no_grad():
+                model(val_batch(step)[rows])
+            model.train()
         opt.step()
         monitor.step()
         if monitor.should_stop:
@@ -379,9 +390,11 @@ def test_shift_monitor_under_ddp_equals_one_process_with_the_whole_batch(tmp_pat
         for layer, ea in a["layers"].items():
             eb = b["layers"][layer]
             assert ea["count"] == eb["count"]
-            for against in ("vs_previous", "vs_reference"):
-                if eb[against] is None:
-                    assert ea[against] is None
+            for against in ("vs_previous", "vs_reference", "vs_train"):
+                assert (against in ea) == (against in eb) == (a["phase"] == "val"
+                                                              or against != "vs_train")
+                if eb.get(against) is None:
+                    assert ea.get(against) is None
                     continue
                 for metric, d in eb[against].items():
                     for key in ("value", "noise"):
@@ -393,11 +406,13 @@ def test_shift_monitor_under_ddp_equals_one_process_with_the_whole_batch(tmp_pat
                             a["step"], layer, metric, key)
                         checked += 1
     assert checked > 100
+    assert sum(r["phase"] == "val" and r["layers"]["0"]["vs_train"] is not None
+               for r in two) >= 4
 
     # cost per sampled step: one all_gather of both phases' packed summaries (+ 1 value);
     # once per run a 16-byte layout handshake and one broadcast of the histogram ranges
     r0 = ranks[0]
-    samples = len(two)
+    samples = len({r["step"] for r in two})  # train and val of a step: one gather
     assert r0["by_kind"] == {"handshake": 1, "all_gather": samples, "broadcast": 1}
     per_gather = 8 * (2 * r0["size"] + 1)
     layers = len(two[0]["layers"])

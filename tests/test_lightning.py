@@ -297,10 +297,19 @@ def test_validation_data_from_another_distribution_gives_validation_alerts(tmp_p
     assert [r["step"] for r in step_records(records, "val")] == [10, 20, 30]
     tags = set(accumulate(trainer.logger.log_dir).Tags()["scalars"])
     assert "shift.val.mean_shift.vs_reference/net.0" in tags
+    # vs_train: each validation run (at global_step G, after optimizer step G - 1) against
+    # the latest sampled training step before it
+    train_steps = [r["step"] for r in step_records(records)]
+    for r in step_records(records, "val"):
+        assert r["train_step"] == max(s for s in train_steps if s < r["step"])
+        assert r["layers"]["net.0"]["vs_train"]["mean_shift"]["ratio"] > 6  # the 2-std shift
+    assert "shift.val.mean_shift.vs_train/net.0" in tags
 
     # control: validation data like the training data, under bf16 mixed precision
     records, _ = run(tmp_path / "same", 0.0, precision="bf16-mixed")
     assert not [r for r in records if r["kind"] == "alert"]
+    assert all(r["layers"]["net.0"]["vs_train"]["mean_shift"]["ratio"] < 6
+               for r in step_records(records, "val"))
     rec = step_records(records)[-1]["layers"]["net.2"]  # LayerNorm: receives bf16 ReLU output
     assert rec["count"] == BATCH * 16 and rec["nonfinite"] == 0 and 0 < rec["std"] < 10
 
