@@ -313,3 +313,38 @@ def test_irregular_blocks_take_the_slow_path_with_the_same_results(tmp_path):
     c = run.channel_table("train", "reference")
     assert c["ch_samples"][run.layers.index("stem.conv"), 2] == 0
     assert c["ch_samples"][run.layers.index("stem.conv"), 0] == edited
+
+
+@settings(max_examples=20, deadline=None)
+@given(seed=st.integers(0, 2**16), digits=st.sampled_from([None, 3]),
+       nulls=st.floats(0.0, 0.2), channels=st.booleans())
+def test_whole_record_path_equals_layer_by_layer(tmp_path_factory, seed, digits, nulls,
+                                                 channels):
+    """A step record folded in one go (the monitor's regular records) and the same record
+    read layer by layer (forced by an extra layer this reader does not know) give the same
+    arrays; null values (NaN) included.  Oracle: the per-layer path, itself checked
+    against the whole log above."""
+    from shiftwatch.cli.aggregate import Grid, PhaseAcc
+
+    d = tmp_path_factory.mktemp("whole")
+    truth = write_log(d, Scenario(samples=12, val_every=None, seed=seed, digits=digits,
+                                  channels=channels))
+    rng = np.random.default_rng(seed)
+    recs = [r for r in load_naive(truth.path) if r["kind"] == "step"]
+    names = [n for n, _, _ in Scenario().layers]
+    lidx = {n: i for i, n in enumerate(names)}
+    grid = Grid.spanning(recs[0]["step"], recs[-1]["step"], bins=5, stride=10)
+    fast, slow = PhaseAcc(len(names), grid), PhaseAcc(len(names), grid)
+    unknown: set[str] = set()
+    for rec in recs:
+        for lay in rec["layers"].values():
+            for blk in (lay.get("vs_previous"), lay.get("vs_reference")):
+                for e in (blk or {}).values():
+                    for k in e:
+                        if rng.random() < nulls:
+                            e[k] = None
+        fast.add(rec["step"], rec["layers"], lidx, set())
+        slow.add(rec["step"], {**rec["layers"], "not.watched": {}}, lidx, unknown)
+    assert unknown == {"layer 'not.watched'"}
+    for name, arr in slow.arrays.items():
+        np.testing.assert_array_equal(fast.arrays[name], arr, err_msg=name)

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from itertools import chain
+from itertools import chain, repeat
 from operator import itemgetter
 from typing import Any
 
@@ -215,6 +215,60 @@ def _gather(d: Any, base: int, layouts: dict[Any, tuple[tuple[int, ...], bool]],
             ents.append(e)
 
 
+_GET = dict.get
+
+
+class _Irregular(Exception):
+    """A record the whole-record path does not take (the per-layer path reads it)."""
+
+
+def _column(blocks: list[Any], lay_pos: np.ndarray, ai: int, width: int,
+            index: dict[str, int], layouts: dict[tuple[str, ...], Any],
+            ) -> tuple[np.ndarray, list[Any]] | None:
+    """Flat positions and entries of one comparison over all layers of a record.
+
+    ``blocks`` holds one metric block per layer (``layers.<name>.vs_<against>``, or the
+    same inside ``channels``).  None when every block is absent; raises
+    :class:`_Irregular` (or KeyError/TypeError) unless every block is an object with the
+    same known metric names: the per-layer path then decides.
+    """
+    n_none = blocks.count(None)
+    if n_none == len(blocks):
+        return None
+    first = blocks[0]
+    if n_none or type(first) is not dict:
+        raise _Irregular
+    names = tuple(first)
+    layout = layouts.get(names)
+    if layout is None:
+        offs = [index.get(k, -1) for k in names]
+        if not offs or -1 in offs:
+            raise _Irregular  # unknown metric names are noted by the per-layer path
+        layout = layouts[names] = (np.array(offs, dtype=np.intp), itemgetter(*names),
+                                   len(names))
+    offs, getter, k = layout
+    if set(map(len, blocks)) != {k}:
+        raise _Irregular
+    ents = list(chain.from_iterable(map(getter, blocks))) if k > 1 else \
+        list(map(getter, blocks))
+    return (((lay_pos * _A + ai) * width)[:, None] + offs).ravel(), ents
+
+
+def _fields(ents: list[Any], getter: itemgetter, width: int, what: str) -> np.ndarray:
+    """The ``getter`` fields of every entry as float64 rows (null -> NaN).
+
+    Raises KeyError/TypeError when an entry is not an object with all the fields (the
+    caller then leaves the record to the per-layer path), ValueError for a field that is
+    not a number or null.
+    """
+    try:  # one C-level pass when every field is a number
+        return np.fromiter(chain.from_iterable(map(getter, ents)), dtype=np.float64,
+                           count=len(ents) * width).reshape(-1, width)
+    except (TypeError, ValueError, KeyError):
+        rows = list(map(getter, ents))  # re-raises KeyError/TypeError for a bad entry
+    return _nums(rows, what)
+
+
 class PhaseAcc:
     """Aggregates of the ``step`` records of one phase (``train`` or ``val``)."""
 
@@ -233,6 +287,10 @@ class PhaseAcc:
         self.outside = 0  # records whose step fell outside the grid (clipped into edge bins)
         self._layouts_m: dict[Any, tuple[tuple[int, ...], bool]] = {}  # key order -> positions
         self._layouts_c: dict[Any, tuple[tuple[int, ...], bool]] = {}
+        # whole-record path: layer-name order -> layer indices; metric names -> offsets
+        self._lay_pos: dict[tuple[str, ...], np.ndarray] = {}
+        self._cols_m: dict[tuple[str, ...], Any] = {}
+        self._cols_c: dict[tuple[str, ...], Any] = {}
 
     def __getattr__(self, name: str) -> np.ndarray:
         try:
@@ -251,6 +309,9 @@ class PhaseAcc:
         if self.last_step is None or step > self.last_step:
             self.last_step = step
         self.arrays["bin_records"][b] += 1
+        if self._add_whole(b, step, layers, lidx):
+            return
+        # a record the whole-record path does not take is read layer by layer.
         # fast path: a block holding exactly the known metrics, each a complete object, is
         # taken whole by C-level itemgetters (positions base + 0..M-1); anything else goes
         # entry by entry through _gather
@@ -327,6 +388,54 @@ class PhaseAcc:
         if lpos:
             self._add_layer_stats(b, step, np.array(lpos, dtype=np.intp),
                                   _nums(lstats, "layer 'std'/'nonfinite'"))
+
+    def _add_whole(self, b: int, step: int, layers: dict[str, Any],
+                   lidx: dict[str, int]) -> bool:
+        """Fold a regular record in with C-level iteration only; False leaves it untouched.
+
+        Regular: every layer is known and an object with ``std`` and ``nonfinite``; for each
+        comparison the metric blocks are absent (null or missing) in every layer or present
+        in every layer with the same known metric names, each entry an object with all its
+        fields (the monitor writes every sample this way).  Anything else returns False
+        before any array is touched, and :meth:`add` reads the record layer by layer, which
+        notes unknown names and skips nulls.  Both paths give the same arrays: every
+        (layer, comparison, metric) position occurs once per record, so the order in which
+        positions are folded does not matter.
+        """
+        names = tuple(layers)
+        lay_pos = self._lay_pos.get(names)
+        if lay_pos is None:
+            if not names or not all(map(lidx.__contains__, names)):
+                return False
+            lay_pos = np.array([lidx[n] for n in names], dtype=np.intp)
+            if len(self._lay_pos) < 16:
+                self._lay_pos[names] = lay_pos
+        vals = list(layers.values())
+        try:
+            mcols = [_column(list(map(_GET, vals, repeat(key))), lay_pos, ai, _M, _MIDX,
+                             self._cols_m) for ai, key in _AK]
+            chs = list(map(_GET, vals, repeat("channels")))
+            ccols = []
+            if chs.count(None) != len(chs):
+                ccols = [_column(list(map(_GET, chs, repeat(key))), lay_pos, ai, _C, _CIDX,
+                                 self._cols_c) for ai, key in _AK]
+            mcols = [c for c in mcols if c is not None]
+            ccols = [c for c in ccols if c is not None]
+            stats = _fields(vals, _IG_LAYER, 2, "layer 'std'/'nonfinite'")
+            ments = list(chain.from_iterable(c[1] for c in mcols))
+            x = _fields(ments, _IG_METRIC, 3, "metric 'value'/'noise'/'ratio'") if mcols \
+                else None
+            cents = list(chain.from_iterable(c[1] for c in ccols))
+            cx = _fields(cents, _IG_CHANNEL, 2, "channel 'max_ratio'/'max'") if ccols \
+                else None
+        except (_Irregular, KeyError, TypeError):
+            return False
+        if x is not None:
+            self._add_metrics(b, step, np.concatenate([c[0] for c in mcols]), x)
+        if cx is not None:
+            self._add_channels(b, step, np.concatenate([c[0] for c in ccols]), cx, cents)
+        self._add_layer_stats(b, step, lay_pos, stats)
+        return True
 
     def _add_metrics(self, b: int, step: int, p: np.ndarray, x: np.ndarray) -> None:
         a = self.arrays
