@@ -315,6 +315,41 @@ def test_irregular_blocks_take_the_slow_path_with_the_same_results(tmp_path):
     assert c["ch_samples"][run.layers.index("stem.conv"), 0] == edited
 
 
+def _same_arrays(a, b) -> None:
+    for phase, acc in b.phases.items():
+        for name, arr in acc.arrays.items():
+            np.testing.assert_array_equal(a.phases[phase].arrays[name], arr, err_msg=name)
+
+
+def test_work_sharing_forward_backward_and_three_processes_match_one_pass(shifted_run):
+    """Chunks claimed from both ends of a region (backward chunks merged in file order),
+    in this process with 4 KiB chunks, and with three real processes (two regions, one of
+    them read by a single process): the same arrays, alerts, reference and end as one
+    pass over the log."""
+    import multiprocessing
+
+    from shiftwatch.cli.runread import _scan_region
+
+    d, _ = shifted_run
+    whole = read_run(d, workers=1)
+    path, size = str(whole.path), whole.size
+    body = len(whole.path.read_bytes().split(b"\n", 1)[0]) + 1
+    for forward in (True, False):
+        bounds = multiprocessing.Array("q", [body, size])
+        first, acc = _scan_region(path, 0, forward, size, whole.layers, whole.grid, None,
+                                  5000, 4096, bounds=bounds)
+        assert first == body and bounds[0] == bounds[1]
+        _same_arrays(acc, whole.acc)
+        assert acc.alerts.kept == whole.acc.alerts.kept
+        assert acc.alerts.first_by_layer == whole.acc.alerts.first_by_layer
+        assert acc.references == whole.acc.references and acc.end == whole.acc.end
+    got = read_run(d, workers=3, parallel_bytes=0)
+    _same_arrays(got.acc, whole.acc)
+    assert got.acc.alerts.kept == whole.acc.alerts.kept
+    assert got.acc.references == whole.acc.references and got.acc.end == whole.acc.end
+    assert got.notes == whole.notes
+
+
 @settings(max_examples=20, deadline=None)
 @given(seed=st.integers(0, 2**16), digits=st.sampled_from([None, 3]),
        nulls=st.floats(0.0, 0.2), channels=st.booleans())

@@ -108,10 +108,14 @@ class RunData:
 
 
 def _scan(path: str, start: int, stop: int, layers: list[str], grid: Grid,
-          decoder_name: str | None, is_last: bool, keep_alerts: int) -> RunAcc:
-    """Fold the records starting in ``[start, stop)`` into a fresh accumulator."""
+          decoder_name: str | None, is_last: bool, keep_alerts: int,
+          acc: RunAcc | None = None) -> RunAcc:
+    """Fold the records starting in ``[start, stop)`` into ``acc`` (default: a fresh one).
+
+    Folding into an existing ``acc`` continues it: the range must follow the one it holds.
+    """
     p = Path(path)
-    acc = RunAcc(layers, grid, keep_alerts=keep_alerts)
+    acc = acc if acc is not None else RunAcc(layers, grid, keep_alerts=keep_alerts)
     decode = decoder(decoder_name)
     # Decoded records are trees freed by reference counting; with ~15,000 objects per step
     # record the cyclic collector would run constantly for nothing (about 40% of the time
@@ -129,6 +133,64 @@ def _scan(path: str, start: int, stop: int, layers: list[str], grid: Grid,
         if was_enabled:
             gc.enable()
     return acc
+
+
+# Work sharing between reading processes.  The body of the log is cut into regions, one per
+# pair of processes: one reads its region front to back, the other back to front, each
+# claiming the next chunk from its end under a lock, until they meet.  A process that starts
+# late (a spawned worker imports the package first) or is slowed by other work on the machine
+# simply reads less; each process still covers one contiguous byte range, so the parts merge
+# in file order exactly as fixed halves would.
+_BOUNDS: Any = None  # the shared region bounds [lo0, hi0, lo1, hi1, ...] in this process
+#: Smallest chunk claimed at a time (bytes); a claim takes 1/6 of what is left of the region.
+MIN_CHUNK = 16 << 20
+
+
+def _share(bounds: Any) -> None:
+    """Pool initializer: keep the shared region bounds in the worker process."""
+    global _BOUNDS
+    _BOUNDS = bounds
+
+
+def _claim(bounds: Any, region: int, forward: bool, min_chunk: int) -> tuple[int, int] | None:
+    """Take the next chunk of ``region`` from its front (``forward``) or its back."""
+    with bounds.get_lock():
+        lo, hi = bounds[2 * region], bounds[2 * region + 1]
+        if lo >= hi:
+            return None
+        size = max(min_chunk, (hi - lo) // 6)
+        if forward:
+            a, b = lo, min(hi, lo + size)
+            bounds[2 * region] = b
+        else:
+            a, b = max(lo, hi - size), hi
+            bounds[2 * region + 1] = a
+    return a, b
+
+
+def _scan_region(path: str, region: int, forward: bool, size: int, layers: list[str],
+                 grid: Grid, decoder_name: str | None, keep_alerts: int,
+                 min_chunk: int, bounds: Any = None) -> tuple[int, RunAcc] | None:
+    """Read chunks of ``region`` until it is used up; return (first byte, accumulator).
+
+    Forward chunks follow each other, so they fold into one accumulator.  Backward chunks
+    come in reverse file order: each is read into a fresh accumulator that then takes in
+    the later part read so far (merges keep file order).  None when no chunk was left.
+    """
+    bounds = bounds if bounds is not None else _BOUNDS
+    acc: RunAcc | None = None
+    first = -1
+    while (chunk := _claim(bounds, region, forward, min_chunk)) is not None:
+        a, b = chunk
+        if forward:
+            acc = _scan(path, a, b, layers, grid, decoder_name, b >= size, keep_alerts, acc)
+            first = a if first < 0 else first
+        else:
+            part = _scan(path, a, b, layers, grid, decoder_name, b >= size, keep_alerts)
+            if acc is not None:
+                part.merge(acc)
+            acc, first = part, a
+    return None if acc is None else (first, acc)
 
 
 def _layer_list(header: dict[str, Any], path: Path) -> tuple[list[str], list[str | None]]:
@@ -152,6 +214,34 @@ def _auto_workers(size: int, parallel_bytes: int) -> int:
         return 1
     cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
     return max(1, min(cpus or 1, 8, size // max(1, parallel_bytes // 2)))
+
+
+def _read_shared(path: str, body: int, size: int, n: int, layers: list[str], grid: Grid,
+                 decoder_name: str | None, keep_alerts: int) -> RunAcc:
+    """Read ``[body, size)`` with ``n`` processes (this one and ``n - 1`` workers)."""
+    regions = (n + 1) // 2  # pairs of processes; the last region has one when n is odd
+    weights = [min(2, n - 2 * r) for r in range(regions)]
+    cuts = [body + (size - body) * sum(weights[:r]) // n for r in range(regions)] + [size]
+    ctx = multiprocessing.get_context("spawn")
+    bounds = ctx.Array("q", [c for r in range(regions) for c in (cuts[r], cuts[r + 1])])
+    min_chunk = max(1 << 16, min(MIN_CHUNK, (size - body) // (8 * n)))
+    jobs = [(path, i // 2, i % 2 == 0, size, layers, grid, decoder_name, keep_alerts,
+             min_chunk) for i in range(n)]
+    with ProcessPoolExecutor(max_workers=n - 1, mp_context=ctx, initializer=_share,
+                             initargs=(bounds,)) as pool:
+        futures = [pool.submit(_scan_region, *job) for job in jobs[1:]]
+        try:
+            parts = [_scan_region(*jobs[0], bounds=bounds)] + [f.result() for f in futures]
+        except BaseException:  # unusable input (or ^C): the workers stop at their next claim
+            with bounds.get_lock():
+                for r in range(regions):
+                    bounds[2 * r + 1] = bounds[2 * r]
+            raise
+    done = sorted((p for p in parts if p is not None), key=lambda p: p[0])
+    acc = done[0][1]
+    for _first, part in done[1:]:
+        acc.merge(part)
+    return acc
 
 
 def read_run(
@@ -183,19 +273,10 @@ def read_run(
     grid = Grid.spanning(first, last, bins=bins, stride=stride)
     n = workers if workers is not None else _auto_workers(size - body, parallel_bytes)
     n = max(1, min(int(n), max(1, (size - body) // 4096)))
-    cuts = [body + (size - body) * i // n for i in range(n)] + [size]
-    jobs = [(str(log), cuts[i], cuts[i + 1], layers, grid, decoder_name, i == n - 1,
-             keep_alerts) for i in range(n)]
     if n == 1:
-        parts = [_scan(*jobs[0])]
+        acc = _scan(str(log), body, size, layers, grid, decoder_name, True, keep_alerts)
     else:
-        ctx = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(max_workers=n - 1, mp_context=ctx) as pool:
-            futures = [pool.submit(_scan, *job) for job in jobs[1:]]
-            parts = [_scan(*jobs[0])] + [f.result() for f in futures]
-    acc = parts[0]
-    for part in parts[1:]:
-        acc.merge(part)
+        acc = _read_shared(str(log), body, size, n, layers, grid, decoder_name, keep_alerts)
     notes = list(acc.notes)
     if acc.unknown:
         shown = sorted(acc.unknown)
