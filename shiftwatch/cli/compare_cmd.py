@@ -1,7 +1,9 @@
 """``shiftwatch compare RUN_A RUN_B``: layer by layer, which run shifted less.
 
 For each layer present in both runs, one metric (``--metric``, default ``mean_shift``)
-against the reference (``--against``) in one phase gives, per run:
+against the reference (``--against``; ``previous`` for batch-to-batch change, ``train`` for
+the train/eval mismatch of eval-mode samples, which implies ``--phase val``) in one phase
+gives, per run:
 
 * *typical*: the median of the metric's raw value over the run's samples, with the median
   ratio to noise beside it;
@@ -24,6 +26,13 @@ either run get none either.
 
 Typical and peak verdicts are combined: agreement (or one undecided) names that run;
 disagreement reads "mixed".  The overall line counts layers; it is not weighted.
+
+With ``--against train`` every value compares one eval-mode (val) sample with the latest
+training sample of the same run (``vs_train`` in the event log): train/eval mismatch
+(BatchNorm's running statistics against the batch's own, dropout...) *plus* the sampling
+difference between the two batches and any weight change between the two forwards; the
+noise floor covers only the sampling part.  "Steadier"
+then means: its eval-mode inputs stayed closer to what training saw.
 """
 
 from __future__ import annotations
@@ -66,6 +75,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--min-samples", type=int, default=5, metavar="N",
                    help="samples each run needs for a verdict on a layer (default 5)")
     add_view_options(p, metric_default="mean_shift")
+    # --against train compares val samples with training ones: it implies --phase val
+    p.set_defaults(phase=None)
+    p._option_string_actions["--phase"].help = (
+        "training-mode or eval-mode samples (default: train; val with --against train)")
     add_workers_option(p)
     p.set_defaults(func=run)
 
@@ -106,7 +119,15 @@ def _decide(a: float | None, na: float | None, ra: float | None, b: float | None
 def compare_runs(a: RunData, b: RunData, *, metric: str = "mean_shift",
                  against: str = "reference", phase: str = "train", margin: float = 2.0,
                  min_samples: int = 5) -> dict[str, Any]:
-    """Layer-by-layer comparison (see the module docstring for the criterion)."""
+    """Layer-by-layer comparison (see the module docstring for the criterion).
+
+    Raises:
+        ValueError: ``against="train"`` with a phase other than ``"val"`` (only eval-mode
+            samples are compared with the latest training sample).
+    """
+    if against == "train" and phase != "val":
+        raise ValueError(f"'against' 'train' needs phase 'val' (got {phase!r}): only "
+                         "eval-mode samples are compared with the latest training sample")
     mi = METRICS.index(metric)
     ta, tb = a.table(phase, against), b.table(phase, against)
     bi = {n: i for i, n in enumerate(b.layers)}
@@ -177,6 +198,11 @@ def render_text(c: dict[str, Any]) -> str:
                    f"{i['first_step']}..{i['last_step']}{state})")
     out.append(f"metric {v['metric']} vs {v['against']}, {v['phase']} phase. typical = median "
                "raw value (median x noise), peak = largest raw value (x noise at that step).")
+    if v["against"] == "train":
+        out.append("vs train: each val sample against the run's latest training sample, i.e. "
+                   "train/eval mismatch plus the sampling difference of the two batches (and "
+                   "any weight change between them); the noise floor covers the sampling "
+                   "part only.")
     out.append(f"a verdict needs |A - B| > {num(v['margin'])} x sqrt(noise_A^2 + noise_B^2), "
                f"the larger above {num(v['margin'])} x noise (typical) or "
                f"{num(3 * v['margin'])} x noise (peak), and {v['min_samples']}+ samples each.")
@@ -203,6 +229,8 @@ def render_text(c: dict[str, Any]) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.phase is None:
+        args.phase = "val" if args.against == "train" else "train"
     if not (args.margin > 0 and math.isfinite(args.margin)):
         return fail("compare", f"'--margin' must be a positive number (got {args.margin})")
     if args.min_samples < 1:
