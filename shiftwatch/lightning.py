@@ -21,7 +21,9 @@ How the callback maps Lightning onto the monitor
       sample describes one optimizer step's data whatever ``accumulate_grad_batches`` is.
     * sanity-check batches are ignored.  Validation batches (up to ``val_batches`` per
       validation run) are summarised as phase ``"val"``, merged over the run and compared
-      with the *training* reference and the previous validation run; they appear under
+      with the *training* reference, the previous validation run and (``vs_train``) the
+      latest sampled training step before it -- up to ``every_n_steps`` optimizer steps
+      earlier, so weight change adds to the train/eval mismatch there; they appear under
       their own TensorBoard tags (``shift.val.*``) and event-log records (``"phase":
       "val"``) and are judged by ``phase="val"`` rules (:func:`validation_rules` are added
       to the built-in rules).
