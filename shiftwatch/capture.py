@@ -65,7 +65,7 @@ class _Gate:
     armed: bool = False
     phase: str | None = None  # forced label, or None: by module.training
     check_finite: bool = False
-    max_hist_values: int | None = 65536
+    max_hist_values: int | None = 16384
     forward_id: int = 0  # bumped by the root pre-hook: one per model forward
     first_fired: int = -1  # forward_id in which a tap last ran first
     input_ptrs: frozenset = frozenset()
@@ -206,7 +206,7 @@ class Capture:
         exclude: str | Iterable[str] | None = None,
         types: Sequence[type | str] | None = None,
         outputs: bool = False,
-        max_hist_values: int | None = 65536,
+        max_hist_values: int | None = 16384,
     ) -> None:
         if not isinstance(outputs, bool):
             raise ConfigError(f"'outputs' must be True or False (got {outputs!r})")
@@ -216,7 +216,7 @@ class Capture:
         ):
             raise ConfigError(
                 f"'max_hist_values' must be a positive int or None (got {max_hist_values!r}); "
-                "e.g. 65536"
+                "e.g. 16384"
             )
         picked = select_modules(model, layers=layers, exclude=exclude, types=types)
         self.gate = _Gate(max_hist_values=max_hist_values)

@@ -146,7 +146,7 @@ class ShiftCallback(Callback):
         on_alert: str = "record",
         reference: str | os.PathLike | None = None,
         bins: int | None = None,
-        max_hist_values: int | None = 65536,
+        max_hist_values: int | None = 16384,
         check_finite_every_step: bool = False,
         tensorboard: bool | None = None,
         val_batches: int | None = None,

@@ -148,7 +148,7 @@ class ShiftMonitor:
         on_alert: str = "record",
         reference: str | os.PathLike | None = None,
         bins: int | None = None,
-        max_hist_values: int | None = 65536,
+        max_hist_values: int | None = 16384,
         check_finite_every_step: bool = False,
         tensorboard: Any = None,
         reducer: Callable[[Tensor, Layout], Tensor] | None = None,

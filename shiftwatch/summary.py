@@ -331,7 +331,7 @@ def summarize(
     *,
     channel_dim: int = 1,
     edges: Tensor | None = None,
-    max_hist_values: int | None = 65536,
+    max_hist_values: int | None = 16384,
 ) -> Summary:
     """Summarise ``x`` on its own device, without host synchronisation.
 
@@ -367,7 +367,7 @@ def summarize_staged(
     *,
     channel_dim: int = 1,
     edges: Tensor | None = None,
-    max_hist_values: int | None = 65536,
+    max_hist_values: int | None = 16384,
 ) -> Callable[[], Summary]:
     """:func:`summarize` in two stages: every pass over ``x`` (and every check of the
     arguments) now, the small float64 tail when the returned function is called.  The
