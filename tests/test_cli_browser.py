@@ -8,15 +8,13 @@ here can hang.  Chromium is Debian's ``chromium`` package (``.ci/run`` installs 
 from __future__ import annotations
 
 import math
-import re
-import subprocess
-import sys
 import time
 from pathlib import Path
 
 import pytest
 from chromium_cdp import CHROMIUM, Browser, pixel_spread
 from eventlog_factory import Scenario, write_log
+from tensorboard_server import start_tensorboard, stop_tensorboard
 
 from shiftwatch.cli import main
 from shiftwatch.cli.render import Html, page
@@ -118,19 +116,8 @@ _DEEP_TEXT = """(() => { const out = [];
 @pytest.mark.timeout(180)
 def test_tensorboard_custom_scalars_page(browser, tmp_path):
     logdir = _tensorboard_logdir(tmp_path / "tb")
-    exe = Path(sys.executable).with_name("tensorboard")
-    cmd = [str(exe) if exe.exists() else "tensorboard", "--logdir", str(logdir),
-           "--host", "127.0.0.1", "--port", "0"]
-    tb = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    tb, port = start_tensorboard(logdir)
     try:
-        port, seen = None, []
-        deadline = time.monotonic() + 60
-        while port is None and time.monotonic() < deadline and tb.poll() is None:
-            line = tb.stdout.readline()
-            seen.append(line)
-            m = re.search(r"http://127\.0\.0\.1:(\d+)/", line)
-            port = int(m.group(1)) if m else None
-        assert port, "".join(seen)
         s = browser.open(f"http://127.0.0.1:{port}/#custom_scalars", load_timeout=60)
         # charts draw after the layout and the scalars are fetched; wait for their text
         text = browser.wait_for(
@@ -144,9 +131,4 @@ def test_tensorboard_custom_scalars_page(browser, tmp_path):
         uncaught = [e for e in browser.console_errors(s) if e.startswith("uncaught")]
         assert uncaught == []
     finally:
-        tb.terminate()
-        try:
-            tb.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            tb.kill()
-            tb.wait(timeout=20)
+        stop_tensorboard(tb)
