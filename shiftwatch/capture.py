@@ -40,7 +40,7 @@ from .selection import (
     pick_tensor,
     select_modules,
 )
-from .summary import Summary, summarize_staged
+from .summary import Summary, finish_staged_many, summarize_staged
 
 __all__ = [
     "DEFAULT_TYPES",
@@ -174,15 +174,6 @@ class Tap:
             stacklevel=4,
         )
 
-    # collection -------------------------------------------------------------
-    def take(self, phase: str) -> Summary | None:
-        """The exact merge of this step's summaries of ``phase`` (``None`` if none)."""
-        pending = self.buckets.pop(phase, None)
-        if not pending:
-            return None
-        items = [finish() for finish in pending]
-        return items[0] if len(items) == 1 else Summary.merge_all(items)
-
 
 class Capture:
     """Owns the hooks on the watched modules and the summaries they produce.
@@ -309,8 +300,16 @@ class Capture:
         return [p for p in PHASES if any(t.buckets.get(p) for t in self.taps)]
 
     def take(self, phase: str) -> list[Summary | None]:
-        """Per tap, the merged summary of ``phase`` since the last take (or ``None``)."""
-        return [t.take(phase) for t in self.taps]
+        """Per tap, the merged summary of ``phase`` since the last take (or ``None``).
+        The staged tails of all taps run together (:func:`finish_staged_many`)."""
+        pending = [t.buckets.pop(phase, None) or [] for t in self.taps]
+        done = iter(finish_staged_many([p for ps in pending for p in ps]))
+        out: list[Summary | None] = []
+        for ps in pending:
+            items = [next(done) for _ in ps]
+            out.append(None if not items else items[0] if len(items) == 1
+                       else Summary.merge_all(items))
+        return out
 
     def take_finite(self) -> list[Tensor | None]:
         """Per tap, the non-finite count of the every-step check since the last call."""

@@ -21,6 +21,7 @@ import functools
 import math
 import threading
 from collections.abc import Callable
+from dataclasses import dataclass
 
 import numpy as np
 import torch
@@ -149,7 +150,90 @@ def _dense_cpu(x: Tensor, cdim: int, per_row: int) -> Finisher | None:
                               shift, per_row)
         return torch.from_numpy(table), torch.tensor([lo_f, hi_f], dtype=torch.float64)
 
+    # what finish_dense_many needs to run this tail together with other layers' tails
+    finish.dense = DenseCells(s1, s2, shift, per_row, lo_f, hi_f)  # type: ignore[attr-defined]
     return finish
+
+
+@dataclass(frozen=True)
+class DenseCells:
+    """Stage-one result of the dense CPU path: per-cell sums ``s1`` and sums of squares
+    ``s2`` ``(N, C)`` (float32) about the per-channel ``shift`` ``(C,)``, ``per_row``
+    finite values per cell, and the layer's finite ``lo``/``hi``."""
+
+    s1: Tensor
+    s2: Tensor
+    shift: np.ndarray
+    per_row: int
+    lo: float
+    hi: float
+
+
+def finish_dense_many(cells: list[DenseCells]) -> list[tuple[Tensor, Tensor]]:
+    """``(table, extrema)`` of each entry, the same as its own tail (up to rounding), with
+    the float64 arithmetic of all entries of one row count done together: the channels of
+    all layers side by side, the per-layer parts by segment sums.  At ``step()`` this
+    replaces ~25 small numpy calls per layer by ~40 in all (each costs ~5-15 us there)."""
+    out: list[tuple[Tensor, Tensor] | None] = [None] * len(cells)
+    groups: dict[int, list[int]] = {}
+    for i, c in enumerate(cells):
+        groups.setdefault(c.s1.shape[0], []).append(i)
+    for ix in groups.values():
+        part = [cells[i] for i in ix]
+        if len(part) == 1:
+            c = part[0]
+            table = _finish_dense(c.s1.numpy().astype(np.float64),
+                                  c.s2.numpy().astype(np.float64), c.shift, c.per_row)
+            tables = [table]
+        else:
+            tables = _finish_dense_segments(part)
+        for i, c, table in zip(ix, part, tables, strict=True):
+            out[i] = (torch.from_numpy(table),
+                      torch.tensor([c.lo, c.hi], dtype=torch.float64))
+    return out  # type: ignore[return-value]
+
+
+def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
+    """:func:`_finish_dense` for several layers of one row count at once (see there for
+    the formulas); layer ``j`` owns channel columns ``starts[j]:starts[j] + C_j`` and
+    layer column ``Ctot + j``."""
+    n_rows = part[0].s1.shape[0]
+    ch = np.array([c.s1.shape[1] for c in part])
+    pr = np.array([c.per_row for c in part], dtype=np.float64)
+    starts = np.concatenate([[0], np.cumsum(ch)[:-1]])
+    c_tot, n_l = int(ch.sum()), len(part)
+    s1 = torch.cat([c.s1 for c in part], 1).numpy().astype(np.float64)
+    s2 = torch.cat([c.s2 for c in part], 1).numpy().astype(np.float64)
+    pr_c = np.repeat(pr, ch)
+    shift = np.concatenate([c.shift for c in part])
+    big_m = np.empty((n_rows, c_tot + n_l))
+    big_m2 = np.empty((n_rows, c_tot + n_l))
+    m, m2 = big_m[:, :c_tot], big_m2[:, :c_tot]
+    np.add(s1 / pr_c, shift, out=m)
+    np.maximum(s2 - s1 * s1 / pr_c, 0.0, out=m2)
+    m_r = np.add.reduceat(m, starts, axis=1) / ch  # (N, L): each row's layer mean
+    dev = m - np.repeat(m_r, ch, axis=1)
+    big_m[:, c_tot:] = m_r
+    big_m2[:, c_tot:] = (np.add.reduceat(m2, starts, axis=1)
+                         + pr * np.add.reduceat(dev * dev, starts, axis=1))
+    w = np.concatenate([pr_c, pr * ch])  # values per cell
+    mean = big_m.sum(0) / n_rows
+    dev = big_m - mean
+    ss = np.einsum("ij,ij->j", dev, dev)
+    v = big_m2 / w
+    row_var = v.sum(0) / n_rows
+    dv = v - row_var
+    cols = {
+        "n": n_rows * w, "mean": mean, "m2": big_m2.sum(0) + w * ss, "nonfinite": 0.0,
+        "rows": float(n_rows), "row_mean": mean, "row_mean_m2": ss,
+        "row_var": row_var, "row_var_m2": np.einsum("ij,ij->j", dv, dv),
+    }
+    table = np.empty((c_tot + n_l, len(FIELDS)))
+    for k, name in enumerate(FIELDS):
+        table[:, k] = cols[name]
+    order = np.concatenate([np.r_[s:s + c, c_tot + j]
+                            for j, (s, c) in enumerate(zip(starts, ch, strict=True))])
+    return np.split(table[order], np.cumsum(ch + 1)[:-1])
 
 
 def _finish_dense(s1: np.ndarray, s2: np.ndarray, shift: np.ndarray, per_row: int) -> np.ndarray:

@@ -42,7 +42,15 @@ from typing import Any
 import torch
 from torch import Tensor
 
-from .cells import FIELDS, check_edges, histogram, reduce_moments, release_scratch, table_parts
+from .cells import (
+    FIELDS,
+    check_edges,
+    finish_dense_many,
+    histogram,
+    reduce_moments,
+    release_scratch,
+    table_parts,
+)
 from .errors import ConfigError, UnsupportedInputError
 
 __all__ = [
@@ -412,4 +420,21 @@ def summarize_staged(
         table, extrema = finish()
         return Summary(table, extrema, hist, edges)
 
+    dense = getattr(finish, "dense", None)
+    if dense is not None:  # lets finish_staged_many batch this tail with others
+        complete.dense = (dense, hist, edges)  # type: ignore[attr-defined]
     return complete
+
+
+def finish_staged_many(pending: list[Callable[[], Summary]]) -> list[Summary]:
+    """Call the tails returned by :func:`summarize_staged`; the same as
+    ``[p() for p in pending]`` up to rounding, with the tails of dense CPU inputs run
+    together (:func:`shiftwatch.cells.finish_dense_many`)."""
+    out: list[Summary | None] = [None] * len(pending)
+    batch = [i for i, p in enumerate(pending) if getattr(p, "dense", None) is not None]
+    if len(batch) > 1:
+        parts = [pending[i].dense for i in batch]  # type: ignore[attr-defined]
+        done = finish_dense_many([d for d, _, _ in parts])
+        for i, (table, extrema), (_, hist, edges) in zip(batch, done, parts, strict=True):
+            out[i] = Summary(table, extrema, hist, edges)
+    return [s if s is not None else p() for s, p in zip(out, pending, strict=True)]

@@ -338,3 +338,37 @@ def test_dense_fast_path_equals_general_path(rows, channels, inner, offset, scal
     b_table, b_ext = _table_single_values(v)
     np.testing.assert_allclose(a_table, b_table.numpy(), rtol=1e-9, atol=1e-9 * scale)
     np.testing.assert_allclose(a_ext, b_ext.numpy(), rtol=1e-12)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    shapes=st.lists(
+        st.tuples(st.sampled_from([3, 8]), st.integers(1, 5),
+                  st.sampled_from([(2, 3), (4,), (1, 1), ()])),
+        min_size=1, max_size=5),
+    offset=st.sampled_from([0.0, -7.0, 300.0]),
+    nan_layer=st.booleans(),
+    seed=st.integers(0, 2**31 - 1),
+)
+def test_tails_run_together_equal_each_layer_alone(shapes, offset, nan_layer, seed):
+    """finish_staged_many (the dense tails of all layers of one row count in one pass,
+    by segment sums) gives each layer's own table: both are float64 arithmetic on the
+    same float32 cell sums, so they agree to float64 rounding.  Mixed in: linear-style
+    inputs (one value per cell) and an input holding a NaN (the general path), which
+    are finished on their own."""
+    from shiftwatch.summary import finish_staged_many, summarize_staged
+
+    g = torch.Generator().manual_seed(seed)
+    xs = [torch.randn(r, c, *inner, generator=g) * 2 + offset for r, c, inner in shapes]
+    if nan_layer:
+        xs[0] = xs[0].clone()
+        xs[0].view(-1)[0] = math.nan
+    edges = make_edges(offset - 4, offset + 4, 8)
+    alone = [summarize_staged(x, edges=edges)() for x in xs]
+    together = finish_staged_many([summarize_staged(x, edges=edges) for x in xs])
+    for x, a, b in zip(xs, alone, together, strict=True):
+        scale = (2 + abs(offset)) ** 2 * x.numel()
+        np.testing.assert_allclose(b.table.numpy(), a.table.numpy(), rtol=1e-9,
+                                   atol=1e-12 * scale)
+        assert b.extrema.tolist() == a.extrema.tolist()
+        assert b.hist.tolist() == a.hist.tolist()
