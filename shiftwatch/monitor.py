@@ -621,7 +621,8 @@ class ShiftMonitor:
         lay = self._layout
         if phase not in self._tb_phases:
             self._tb_phases = tuple(p for p in PHASES if p in (*self._tb_phases, phase))
-            self._tb.write_layout(METRICS, lay.names, self._tb_phases)
+            self._tb.write_layout(METRICS, lay.names, self._tb_phases,
+                                  against={p: _tb_against(p) for p in self._tb_phases})
         tags = self._tb_tags.get(phase)
         if tags is None:
             tags = self._tb_tags[phase] = {

@@ -204,3 +204,19 @@ def test_tensorboard_gets_vs_train_ratios_for_val_only(tmp_path):
     want = [r["layers"]["4"]["vs_train"]["mean_shift"]["ratio"]
             for r in records(tmp_path, "step", "val")]
     assert got == pytest.approx(want, rel=1e-6) and val["train_step"] == 1
+    # the custom-scalars layout charts vs_train for the val phase, and only there; its
+    # regexes match the tags written (TensorBoard applies them with re.match)
+    import re
+
+    from tensorboard.plugins.custom_scalar import layout_pb2
+
+    acc = EventAccumulator(str(tmp_path), size_guidance={"tensors": 0})
+    acc.Reload()
+    (layout_event,) = acc.Tensors("custom_scalars__config__")[-1:]
+    layout = layout_pb2.Layout.FromString(layout_event.tensor_proto.string_val[0])
+    charts = {c.title: (cat.title, c.multiline.tag[0]) for cat in layout.category
+              for c in cat.chart}
+    vs_train = {t: v for t, v in charts.items() if " vs train " in t}
+    assert vs_train and all("(val)" in cat for cat, _ in vs_train.values())
+    _, regex = charts["mean_shift vs train (ratio to noise)"]
+    assert "shift.val.mean_shift.vs_train/4" in {t for t in tags if re.match(regex, t)}

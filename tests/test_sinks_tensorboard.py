@@ -177,18 +177,20 @@ def test_outer_empty_buckets_are_dropped_and_empty_histograms_stay_empty(tmp_pat
 # ---------------------------------------------------------------- scalars, text, layout
 LAYERS = ("features.0", "features.0.bn", "head fc")  # a prefix of another; a space
 METRICS = ("mean_shift", "psi")
+# the monitor's comparisons: val samples are also compared with the training sample
+AGAINST = {"train": ("previous", "reference"), "val": ("previous", "reference", "train")}
 
 
 def write_demo_run(sink: TensorBoardSink) -> dict[str, list[tuple[int, float]]]:
     """Write a small run; return tag -> [(step, value)] of the scalars written."""
     written: dict[str, list[tuple[int, float]]] = {}
-    sink.write_layout(METRICS, LAYERS, ("train", "val"))
+    sink.write_layout(METRICS, LAYERS, ("train", "val"), against=AGAINST)
     for step in (10, 20, 30):
         for phase in ("train", "val"):
             scalars = {}
             for i, layer in enumerate(LAYERS):
                 for j, metric in enumerate(METRICS):
-                    for against in ("previous", "reference"):
+                    for against in AGAINST[phase]:
                         ratio = step / 10 + i + 0.25 * j
                         scalars[scalar_tag(phase, against, metric, layer)] = ratio
                         scalars[scalar_tag(phase, against, metric, layer, kind="value")] = 0.01
@@ -205,7 +207,7 @@ def write_demo_run(sink: TensorBoardSink) -> dict[str, list[tuple[int, float]]]:
 def test_scalars_text_and_layout_read_back(tmp_path):
     with TensorBoardSink(tmp_path / "run") as sink:
         written = write_demo_run(sink)
-        sink.write_layout(METRICS, LAYERS, ("train", "val"))  # same layout: not rewritten
+        sink.write_layout(METRICS, LAYERS, ("train", "val"), against=AGAINST)  # not rewritten
     acc = accumulate(tmp_path / "run")
     assert set(acc.Tags()["scalars"]) == set(written)
     for tag, points in written.items():
@@ -244,7 +246,16 @@ def test_scalars_text_and_layout_read_back(tmp_path):
                 assert category.closed
             assert matched == want and matched <= ratio
             seen += 1
-    assert seen == 2 * (len(METRICS) * 2 + len(LAYERS) * 2)
+    n_against = len(AGAINST["train"]) + len(AGAINST["val"])
+    assert seen == (len(METRICS) + len(LAYERS)) * n_against
+    vs_train = [c.title for cat in layout.category if "(val)" in cat.title
+                for c in cat.chart if c.title.split(" vs ")[1].startswith("train ")]
+    assert len(vs_train) == len(METRICS) + len(LAYERS)
+
+
+def test_layout_comparisons_per_phase_must_name_charted_phases(tmp_path):
+    with TensorBoardSink(tmp_path) as sink, pytest.raises(ConfigError, match="'against'.*val"):
+        sink.write_layout(METRICS, LAYERS, ("train",), against={"val": ("train",)})
 
 
 def test_new_layout_arguments_replace_the_layout(tmp_path):

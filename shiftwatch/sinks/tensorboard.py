@@ -291,7 +291,7 @@ class TensorBoardSink:
         layers: Sequence[str],
         phases: Sequence[str] = ("train",),
         *,
-        against: Sequence[str] = COMPARISONS,
+        against: Sequence[str] | Mapping[str, Sequence[str]] = COMPARISONS,
     ) -> None:
         """Write the custom-scalars layout (TensorBoard's *Custom Scalars* tab).
 
@@ -302,19 +302,35 @@ class TensorBoardSink:
         floor), so the lines of a chart are comparable; across metrics a ratio says how
         unusual a change is, not how large it is.
 
+        ``against`` names the comparisons charted: one sequence for every phase, or a
+        mapping from phase to its comparisons (the monitor charts ``train`` -- the
+        train/eval mismatch -- for ``val`` only); a phase missing from the mapping gets
+        :data:`COMPARISONS`.
+
         Written once: calling again with the same arguments does nothing; other arguments
         replace the layout (TensorBoard shows the latest layout of a run).
         """
         metrics = [check_name(m, "metric") for m in metrics]
         phases = [check_name(p, "phase", phase=True) for p in phases]
-        against = [check_name(a, "against") for a in against]
+        if isinstance(against, Mapping):
+            unknown = sorted(set(against) - set(phases))
+            if unknown:
+                raise ConfigError(
+                    f"'against' names phase(s) {unknown} that are not in 'phases' {phases}; "
+                    "give comparisons only for the phases charted"
+                )
+            by_phase = {p: tuple(against.get(p, COMPARISONS)) for p in phases}
+        else:
+            by_phase = dict.fromkeys(phases, tuple(against))
+        by_phase = {p: tuple(check_name(a, "against") for a in v) for p, v in by_phase.items()}
         layers = list(dict.fromkeys(layer_tag_part(layer) for layer in layers))
-        key = (tuple(metrics), tuple(layers), tuple(phases), tuple(against))
+        key = (tuple(metrics), tuple(layers), tuple(phases), tuple(by_phase.items()))
         if key == self._layout_key:
             return
         lp = self._pb.layout_pb2
         categories = []
         for phase in phases:
+            against = by_phase[phase]
             by_metric = [
                 lp.Chart(
                     title=f"{metric} vs {other} (ratio to noise)",
