@@ -53,8 +53,8 @@ from . import __version__
 from .capture import PHASES, Capture
 from .compare import Layout, compare_all, edges_from_sample, layer_stats, merge_flats, observation
 from .distributed import PackLayout, SummaryReducer, rank_and_world
-from .divergence import METRICS, MOMENT_METRICS
 from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning
+from .outputs import TensorBoardOutput, step_record
 from .reference import Reference, load_reference_file, save_reference_file
 from .rules import Alert, Judge, Observation, Rule, default_rules, load_rules, with_action
 from .sinks.eventlog import EventLog
@@ -66,7 +66,6 @@ logger = logging.getLogger("shiftwatch")
 ON_ALERT = ("record", "stop", "raise")
 _STATE_FORMAT = "shiftwatch.ShiftMonitor"
 _STATE_VERSION = 1
-_TB_STATS = ("mean", "std")
 
 
 @dataclass(frozen=True)
@@ -232,8 +231,6 @@ class ShiftMonitor:
         self._layout: Layout | None = None
         self._ranges: np.ndarray | None = None
         self._entry: list[str] | None = None
-        self._tb_tags: dict = {}
-        self._tb_phases: tuple[str, ...] = ()
         self.alerts: list[Alert] = []
         self.should_stop = False
         self.stop_reason: str | None = None
@@ -294,14 +291,14 @@ class ShiftMonitor:
             if self.log_dir is None:
                 raise ConfigError("'tensorboard=True' needs a 'log_dir'; pass log_dir=...")
             try:
-                return TensorBoardSink(self.log_dir)
+                return TensorBoardOutput(TensorBoardSink(self.log_dir), self.bins)
             except ImportError:
                 if option is True:
                     raise
                 logger.info("shiftwatch: TensorBoard is not installed; writing events.jsonl only "
                             "(pip install shiftwatch[tensorboard] to get TensorBoard logs)")
                 return None
-        return TensorBoardSink(writer=option)
+        return TensorBoardOutput(TensorBoardSink(writer=option), self.bins)
 
     # ------------------------------------------------------------------ schedule
     def is_sampled(self, step: int) -> bool:
@@ -510,7 +507,8 @@ class ShiftMonitor:
             scored = compare_all(cur, list(others.values()), lay, self._ranges, pool=ref)
             results = dict(zip(others, scored, strict=True))
         obs = observation(step, phase, lay, stats, results)
-        record = self._step_record(phase, step, stats, results)
+        record = step_record(lay.names, phase, step, stats, results,
+                             train_step=self._prev_step.get("train"))
         # state updates: previous sample, reference pooling, histogram edges
         self._prev[phase] = flat
         self._prev_step[phase] = step
@@ -537,41 +535,6 @@ class ShiftMonitor:
             edges = torch.linspace(lo, hi, self.bins + 1, dtype=torch.float64)
         self._ranges[i] = (lo, hi)
         tap.edges = edges
-
-    def _step_record(self, phase, step, stats, results) -> dict:
-        names = self._layout.names
-        s = {k: v.tolist() for k, v in stats.items()}
-        layers: dict[str, Any] = {}
-        conv = {a: (r[0]["value"].tolist(), r[0]["noise"].tolist(), r[0]["ratio"].tolist(),
-                    {k: v.tolist() for k, v in r[1].items()}) for a, r in results.items()}
-        for j, name in enumerate(names):
-            entry: dict[str, Any] = {
-                "count": s["count"][j], "nonfinite": s["nonfinite"][j], "mean": s["mean"][j],
-                "std": s["std"][j], "min": s["min"][j], "max": s["max"][j],
-                "vs_previous": None, "vs_reference": None,
-            }
-            if phase == "val":
-                entry["vs_train"] = None
-            channels: dict[str, Any] = {}
-            for against, (val, noi, rat, ch) in conv.items():
-                entry[f"vs_{against}"] = {
-                    m: {"value": val[i][j], "noise": noi[i][j], "ratio": rat[i][j]}
-                    for i, m in enumerate(METRICS)
-                }
-                channels[f"vs_{against}"] = {
-                    m: {"mean": ch["mean_value"][i][j], "max": ch["max_value"][i][j],
-                        "max_ratio": ch["max_ratio"][i][j],
-                        "worst": [c for c in ch["top"][i][j] if c >= 0]}
-                    for i, m in enumerate(MOMENT_METRICS)
-                }
-            if channels:
-                entry["channels"] = channels
-            layers[name] = entry
-        record: dict[str, Any] = {"kind": "step", "step": step, "phase": phase}
-        if phase == "val":  # the training sample vs_train compares with (None: none yet)
-            record["train_step"] = self._prev_step.get("train")
-        record["layers"] = layers
-        return record
 
     # ------------------------------------------------------------------ judge / effect
     def judge(self, obs: Observation) -> Decision:
@@ -613,50 +576,8 @@ class ShiftMonitor:
         for a in decision.alerts:
             self._write(a.to_record())
         if self._tb is not None:
-            self._emit_tensorboard(phase, step, flat, record, decision)
-
-    def _emit_tensorboard(self, phase, step, flat, record, decision) -> None:
-        from .sinks.tensorboard import HistogramData, histogram_tag, scalar_tag, stat_tag
-
-        lay = self._layout
-        if phase not in self._tb_phases:
-            self._tb_phases = tuple(p for p in PHASES if p in (*self._tb_phases, phase))
-            self._tb.write_layout(METRICS, lay.names, self._tb_phases,
-                                  against={p: _tb_against(p) for p in self._tb_phases})
-        tags = self._tb_tags.get(phase)
-        if tags is None:
-            tags = self._tb_tags[phase] = {
-                "ratio": {(a, m, n): scalar_tag(phase, a, m, n) for a in _tb_against(phase)
-                          for m in METRICS for n in lay.names},
-                "stat": {(k, n): stat_tag(phase, k, n) for k in _TB_STATS for n in lay.names},
-                "hist": {n: histogram_tag(phase, n) for n in lay.names},
-            }
-        scalars: dict[str, float] = {}
-        for name, entry in record["layers"].items():
-            for k in _TB_STATS:
-                if entry[k] is not None:
-                    scalars[tags["stat"][(k, name)]] = entry[k]
-            for a in _tb_against(phase):
-                vs = entry[f"vs_{a}"]
-                if vs:
-                    for m, d in vs.items():
-                        r = d["ratio"]
-                        if r == r:  # not NaN
-                            scalars[tags["ratio"][(a, m, name)]] = r
-        hists = {}
-        p = lay.split(flat)
-        m2s = layer_stats(p, lay)["m2"].tolist()
-        for i, name in enumerate(lay.names):
-            h = p.hist[i]
-            if not np.isnan(self._ranges[i, 0]) and h.sum() > 0:
-                e = record["layers"][name]
-                n, mean, m2 = e["count"], e["mean"], m2s[i]
-                hists[tags["hist"][name]] = HistogramData(
-                    edges=np.linspace(*self._ranges[i], self.bins + 1), counts=h,
-                    min=e["min"], max=e["max"], num=n, sum=n * mean, sum_squares=m2 + n * mean**2)
-        self._tb.write_step(step, phase, scalars, hists)
-        for a in decision.alerts:
-            self._tb.write_alert(step, f"**{a.severity}** {a.message}")
+            self._tb.write(phase, step, self._layout, self._ranges, flat, record,
+                           decision.alerts)
 
     # ------------------------------------------------------------------ reference file
     def save_reference(self, path: str | os.PathLike) -> Path:
@@ -783,11 +704,6 @@ class ShiftMonitor:
         state = "closed" if self._closed else f"step {self._step}"
         return (f"ShiftMonitor({len(self.layers)} layers, every_n_steps={self.every_n_steps}, "
                 f"{state}, {len(self.alerts)} alerts)")
-
-
-def _tb_against(phase: str) -> tuple[str, ...]:
-    """Comparisons a step record of ``phase`` carries (``vs_train``: val records only)."""
-    return ("previous", "reference", "train") if phase == "val" else ("previous", "reference")
 
 
 def _open_event_log(log_dir: Path) -> EventLog:
