@@ -145,13 +145,14 @@ def _dense_cpu(x: Tensor, cdim: int, per_row: int) -> Finisher | None:
     # cell against 2e-7 here)
     s2 = d.square_().sum(red)
 
+    cells = DenseCells(s1, s2, shift, per_row, lo_f, hi_f)
+
     def finish() -> tuple[Tensor, Tensor]:
-        table = _finish_dense(s1.numpy().astype(np.float64), s2.numpy().astype(np.float64),
-                              shift, per_row)
-        return torch.from_numpy(table), torch.tensor([lo_f, hi_f], dtype=torch.float64)
+        (done,) = finish_dense_many([cells])
+        return done
 
     # what finish_dense_many needs to run this tail together with other layers' tails
-    finish.dense = DenseCells(s1, s2, shift, per_row, lo_f, hi_f)  # type: ignore[attr-defined]
+    finish.dense = cells  # type: ignore[attr-defined]
     return finish
 
 
@@ -180,23 +181,21 @@ def finish_dense_many(cells: list[DenseCells]) -> list[tuple[Tensor, Tensor]]:
         groups.setdefault(c.s1.shape[0], []).append(i)
     for ix in groups.values():
         part = [cells[i] for i in ix]
-        if len(part) == 1:
-            c = part[0]
-            table = _finish_dense(c.s1.numpy().astype(np.float64),
-                                  c.s2.numpy().astype(np.float64), c.shift, c.per_row)
-            tables = [table]
-        else:
-            tables = _finish_dense_segments(part)
-        for i, c, table in zip(ix, part, tables, strict=True):
+        for i, c, table in zip(ix, part, _finish_dense_segments(part), strict=True):
             out[i] = (torch.from_numpy(table),
                       torch.tensor([c.lo, c.hi], dtype=torch.float64))
     return out  # type: ignore[return-value]
 
 
 def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
-    """:func:`_finish_dense` for several layers of one row count at once (see there for
-    the formulas); layer ``j`` owns channel columns ``starts[j]:starts[j] + C_j`` and
-    layer column ``Ctot + j``."""
+    """Per layer, the float64 table from per-cell sums ``s1`` and sums of squares ``s2``
+    ``(N, C_j)`` about the per-channel ``shift`` when every cell holds ``per_row`` finite
+    values, for layers of one row count ``N`` side by side: layer ``j`` owns channel
+    columns ``starts[j]:starts[j] + C_j`` and layer column ``Ctot + j`` (each row's
+    channels merged), so one set of reductions over rows fills every table.  Equal cell
+    counts turn the Chan merges of :func:`_finish` into plain means: a channel's mean is
+    the mean of its cell means, and so on.  (Sums divided by counts rather than
+    ``ndarray.mean``, whose Python wrapper costs more than the arithmetic here.)"""
     n_rows = part[0].s1.shape[0]
     ch = np.array([c.s1.shape[1] for c in part])
     pr = np.array([c.per_row for c in part], dtype=np.float64)
@@ -234,42 +233,6 @@ def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
     order = np.concatenate([np.r_[s:s + c, c_tot + j]
                             for j, (s, c) in enumerate(zip(starts, ch, strict=True))])
     return np.split(table[order], np.cumsum(ch + 1)[:-1])
-
-
-def _finish_dense(s1: np.ndarray, s2: np.ndarray, shift: np.ndarray, per_row: int) -> np.ndarray:
-    """The float64 table from per-cell sums ``s1`` and sums of squares ``s2`` ``(N, C)``
-    about the per-channel ``shift`` when every cell holds ``per_row`` finite values.
-    Equal cell counts turn the Chan merges of :func:`_finish` into plain means: a
-    channel's mean is the mean of its cell means, and so on.  (Sums divided by counts
-    rather than ``ndarray.mean``, whose Python wrapper costs more than the arithmetic
-    at these sizes.)"""
-    n_rows, n_ch = s1.shape
-    out = np.empty((n_ch + 1, len(FIELDS)))
-    big_m = np.empty((n_rows, n_ch + 1))  # cell means; column C: each row's layer mean
-    big_m2 = np.empty((n_rows, n_ch + 1))  # cell M2; column C: each row's layer M2
-    m, m2 = big_m[:, :n_ch], big_m2[:, :n_ch]
-    np.add(s1 / per_row, shift, out=m)
-    np.maximum(s2 - s1 * s1 / per_row, 0.0, out=m2)
-    m_r = m.sum(1) / n_ch
-    dev = m - m_r[:, None]
-    big_m[:, n_ch] = m_r
-    big_m2[:, n_ch] = m2.sum(1) + per_row * np.einsum("ij,ij->i", dev, dev)
-    w = np.full(n_ch + 1, float(per_row))  # values per cell
-    w[n_ch] = per_row * n_ch
-    mean = big_m.sum(0) / n_rows
-    dev = big_m - mean
-    ss = np.einsum("ij,ij->j", dev, dev)  # M2 of the row means
-    v = big_m2 / w  # within-row variances
-    row_var = v.sum(0) / n_rows
-    dv = v - row_var
-    cols = {
-        "n": n_rows * w, "mean": mean, "m2": big_m2.sum(0) + w * ss, "nonfinite": 0.0,
-        "rows": float(n_rows), "row_mean": mean, "row_mean_m2": ss,
-        "row_var": row_var, "row_var_m2": np.einsum("ij,ij->j", dv, dv),
-    }
-    for k, name in enumerate(FIELDS):
-        out[:, k] = cols[name]
-    return out
 
 
 def _single_values_dense(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

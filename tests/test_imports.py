@@ -6,6 +6,13 @@ import sys
 from pathlib import Path
 
 
+def run_fresh_python(code: str) -> str:
+    """Run ``code`` in a new interpreter (so ``sys.modules`` starts empty); its stdout."""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert out.returncode == 0, out.stdout + out.stderr
+    return out.stdout
+
+
 def test_import_shiftwatch_leaves_optional_integrations_out():
     code = (
         "import sys, shiftwatch\n"
@@ -15,8 +22,7 @@ def test_import_shiftwatch_leaves_optional_integrations_out():
         "assert not heavy, heavy\n"
         "assert sorted(shiftwatch.__all__) == list(shiftwatch.__all__)\n"
     )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
-    assert out.returncode == 0, out.stdout + out.stderr
+    run_fresh_python(code)
 
 
 def test_console_script_reports_version():
@@ -58,7 +64,6 @@ def test_log_reading_commands_do_not_load_torch(tmp_path):
         "assert 'torch' in sys.modules and shiftwatch.ShiftMonitor.__name__ == 'ShiftMonitor'\n"
         "from shiftwatch import Summary, summarize\n"
     )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
-    assert out.returncode == 0, out.stdout + out.stderr
-    codes = ast.literal_eval(out.stdout.strip().splitlines()[-1])
+    out = run_fresh_python(code)
+    codes = ast.literal_eval(out.strip().splitlines()[-1])
     assert codes[0] == 0 and codes[2] == 0 and codes[3] == 0 and codes[1] in (0, 1)
