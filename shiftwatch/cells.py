@@ -81,7 +81,9 @@ def table_parts(x: Tensor, cdim: int) -> tuple[Finisher, bool | None]:
         if not on_cpu:
             return (lambda: _table_single_values(v)), None
         v64 = v.numpy()
-        if math.isfinite(float(v64.sum())):  # float64 sums of float32 cannot overflow
+        with np.errstate(invalid="ignore"):  # inf - inf: NaN, no warning to the user
+            total = float(v64.sum())
+        if math.isfinite(total):  # float64 sums of float32 cannot overflow
             return (lambda: _from_numpy(*_single_values_dense(v64))), True
         return (lambda: _table_single_values(v)), False
     if on_cpu:

@@ -394,9 +394,9 @@ class ShiftMonitor:
             if self._layout is None:
                 self._learn_layout(summaries)  # may drop taps (and their summaries)
             flat = self._to_host(self._reduce(self._pack(summaries)))
-            obs, record = self._analyse(phase, step, flat)
+            obs, record, scored = self._analyse(phase, step, flat)
             decision = self.judge(obs)
-            self._emit(phase, step, flat, record, decision)
+            self._emit(phase, step, flat, record, scored, decision)
             new += self._apply(decision)
         return new
 
@@ -425,9 +425,9 @@ class ShiftMonitor:
             stats = layer_stats(lay.split(flat), lay)
             if not (stats["count"].any() or stats["nonfinite"].any()):
                 continue
-            obs, record = self._analyse(phase, step, flat)
+            obs, record, scored = self._analyse(phase, step, flat)
             decision = self.judge(obs)
-            self._emit(phase, step, flat, record, decision)
+            self._emit(phase, step, flat, record, scored, decision)
             new += self._apply(decision)
         return new
 
@@ -484,7 +484,11 @@ class ShiftMonitor:
         return self._apply(decision)
 
     # ------------------------------------------------------------------ compare
-    def _analyse(self, phase: str, step: int, flat: np.ndarray) -> tuple[Observation, dict]:
+    def _analyse(
+        self, phase: str, step: int, flat: np.ndarray
+    ) -> tuple[Observation, dict, tuple]:
+        """Score one host sample and update the state; returns the observation for the
+        rules, the event-log record and ``(stats, results)`` for the TensorBoard writes."""
         lay = self._layout
         cur = lay.split(flat)
         stats = layer_stats(cur, lay)
@@ -527,7 +531,7 @@ class ShiftMonitor:
                     lo, hi = self.reducer.broadcast(torch.from_numpy(np.stack([lo, hi]))).numpy()
                 for i in np.flatnonzero(need).tolist():
                     self._set_edges(i, float(lo[i]), float(hi[i]))
-        return obs, record
+        return obs, record, (stats, results)
 
     def _set_edges(self, i: int, lo: float, hi: float, edges: Tensor | None = None) -> None:
         tap = self._capture.taps[i]
@@ -571,12 +575,13 @@ class ShiftMonitor:
                      "steps": list(self._ref.steps), "path": self._ref.path,
                      "entry": self._entry})
 
-    def _emit(self, phase, step, flat, record, decision: Decision) -> None:
+    def _emit(self, phase, step, flat, record, scored, decision: Decision) -> None:
         self._write(record)
         for a in decision.alerts:
             self._write(a.to_record())
         if self._tb is not None:
-            self._tb.write(phase, step, self._layout, self._ranges, flat, record,
+            stats, results = scored
+            self._tb.write(phase, step, self._layout, self._ranges, flat, stats, results,
                            decision.alerts)
 
     # ------------------------------------------------------------------ reference file

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from .capture import PHASES
-from .compare import Layout, layer_stats
+from .compare import Layout
 from .divergence import METRICS, MOMENT_METRICS
 
 __all__ = ["TensorBoardOutput", "comparisons_of", "step_record"]
@@ -87,7 +87,12 @@ class TensorBoardOutput:
     :class:`~shiftwatch.sinks.tensorboard.TensorBoardSink`: ratio scalars of every
     comparison, layer mean and std, the histogram from the sample's own counts, the
     alerts as text, and the custom-scalars layout (rewritten when a phase first
-    appears).  Tags are built once per phase.
+    appears).
+
+    Everything is taken from the arrays the step was scored into (no record dicts are
+    walked): the tags of a phase are built once as arrays in the order of those arrays,
+    and the histogram bucket limits of a layer once per histogram range.  A scalar that
+    is NaN (no data, or a metric not available yet) is not written.
 
     Args:
         sink: the open sink (closed by :meth:`close`).
@@ -97,8 +102,31 @@ class TensorBoardOutput:
 
     def __init__(self, sink: Any, bins: int) -> None:
         self.sink, self.bins = sink, bins
-        self._tags: dict[str, dict] = {}
+        self._tags: dict[tuple[str, tuple[str, ...]], np.ndarray] = {}
+        self._hist_tags: dict[str, list[str]] = {}
+        self._limits: dict[int, tuple[tuple[float, float], tuple[float, ...]]] = {}
         self._phases: tuple[str, ...] = ()
+
+    def _scalar_tags(self, phase: str, names: Sequence[str], against: tuple[str, ...]):
+        """Tags in the order of :meth:`write`'s value vector: the layer statistics
+        ``(len(_TB_STATS), L)``, then per comparison the ratios ``(len(METRICS), L)``."""
+        from .sinks.tensorboard import scalar_tag, stat_tag
+
+        key = (phase, against)
+        tags = self._tags.get(key)
+        if tags is None:
+            flat = [stat_tag(phase, k, n) for k in _TB_STATS for n in names]
+            flat += [scalar_tag(phase, a, m, n) for a in against for m in METRICS for n in names]
+            tags = self._tags[key] = np.array(flat, dtype=object)
+        return tags
+
+    def _bucket_limits(self, i: int, lo: float, hi: float) -> tuple[float, ...]:
+        """The ``bins + 1`` edges of layer ``i`` as floats (cached while its range holds)."""
+        cached = self._limits.get(i)
+        if cached is None or cached[0] != (lo, hi):
+            cached = self._limits[i] = (
+                (lo, hi), tuple(np.linspace(lo, hi, self.bins + 1).tolist()))
+        return cached[1]
 
     def write(
         self,
@@ -107,50 +135,44 @@ class TensorBoardOutput:
         layout: Layout,
         ranges: np.ndarray,
         flat: np.ndarray,
-        record: Mapping[str, Any],
+        stats: Mapping[str, np.ndarray],
+        results: Mapping[str, tuple[dict, dict]],
         alerts: Sequence[Any],
     ) -> None:
-        """One sampled step of ``phase``: ``record`` from :func:`step_record`, ``flat`` the
-        host sample it was scored from, ``ranges`` the ``(L, 2)`` histogram ranges (NaN:
-        no edges yet), ``alerts`` the step's :class:`~shiftwatch.rules.Alert` objects."""
-        from .sinks.tensorboard import HistogramData, histogram_tag, scalar_tag, stat_tag
+        """One sampled step of ``phase``: ``flat`` the host sample, ``stats`` its
+        :func:`~shiftwatch.compare.layer_stats`, ``results`` comparison name ->
+        ``(layer, channel)`` as :func:`~shiftwatch.compare.compare_all` returned them
+        (absent: not available at this step), ``ranges`` the ``(L, 2)`` histogram ranges
+        (NaN: no edges yet), ``alerts`` the step's :class:`~shiftwatch.rules.Alert`
+        objects."""
+        from .sinks.tensorboard import HistogramData, histogram_tag
 
+        names = layout.names
         if phase not in self._phases:
             self._phases = tuple(p for p in PHASES if p in (*self._phases, phase))
-            self.sink.write_layout(METRICS, layout.names, self._phases,
+            self.sink.write_layout(METRICS, names, self._phases,
                                    against={p: comparisons_of(p) for p in self._phases})
-        tags = self._tags.get(phase)
-        if tags is None:
-            tags = self._tags[phase] = {
-                "ratio": {(a, m, n): scalar_tag(phase, a, m, n) for a in comparisons_of(phase)
-                          for m in METRICS for n in layout.names},
-                "stat": {(k, n): stat_tag(phase, k, n) for k in _TB_STATS
-                         for n in layout.names},
-                "hist": {n: histogram_tag(phase, n) for n in layout.names},
-            }
-        scalars: dict[str, float] = {}
-        for name, entry in record["layers"].items():
-            for k in _TB_STATS:
-                if entry[k] is not None:
-                    scalars[tags["stat"][(k, name)]] = entry[k]
-            for a in comparisons_of(phase):
-                vs = entry[f"vs_{a}"]
-                if vs:
-                    for m, d in vs.items():
-                        r = d["ratio"]
-                        if r == r:  # not NaN
-                            scalars[tags["ratio"][(a, m, name)]] = r
+        against = tuple(a for a in comparisons_of(phase) if a in results)
+        tags = self._scalar_tags(phase, names, against)
+        values = np.concatenate([np.stack([stats[k] for k in _TB_STATS]).ravel(),
+                                 *(results[a][0]["ratio"].ravel() for a in against)])
+        keep = ~np.isnan(values)
+        scalars = dict(zip(tags[keep].tolist(), values[keep].tolist(), strict=True))
         hists = {}
-        p = layout.split(flat)
-        m2s = layer_stats(p, layout)["m2"].tolist()
-        for i, name in enumerate(layout.names):
-            h = p.hist[i]
-            if not np.isnan(ranges[i, 0]) and h.sum() > 0:
-                e = record["layers"][name]
-                n, mean, m2 = e["count"], e["mean"], m2s[i]
-                hists[tags["hist"][name]] = HistogramData(
-                    edges=np.linspace(*ranges[i], self.bins + 1), counts=h,
-                    min=e["min"], max=e["max"], num=n, sum=n * mean, sum_squares=m2 + n * mean**2)
+        hist = layout.split(flat).hist
+        drawn = np.flatnonzero(~np.isnan(ranges[:, 0]) & (hist.sum(1) > 0)).tolist()
+        if drawn:
+            htags = self._hist_tags.get(phase)
+            if htags is None:
+                htags = self._hist_tags[phase] = [histogram_tag(phase, n) for n in names]
+            n_, mean_, m2_, lo_, hi_ = (stats[k].tolist() for k in ("count", "mean", "m2",
+                                                                     "min", "max"))
+            for i in drawn:
+                n, mean = n_[i], mean_[i]
+                hists[htags[i]] = HistogramData.trusted(
+                    edges=self._bucket_limits(i, *ranges[i].tolist()),
+                    counts=tuple(hist[i].tolist()), min=lo_[i], max=hi_[i], num=n,
+                    sum=n * mean, sum_squares=m2_[i] + n * mean * mean)
         self.sink.write_step(step, phase, scalars, hists)
         for a in alerts:
             self.sink.write_alert(step, f"**{a.severity}** {a.message}")

@@ -177,6 +177,41 @@ def test_tensorboard_events_read_back_with_tensorboards_reader(tmp_path):
     assert text, tags["tensors"]
 
 
+def test_tensorboard_histogram_equals_numpys_of_the_layer_input(tmp_path):
+    """The histogram the monitor writes for a layer is numpy's histogram of that layer's
+    input at that step over the reference's edges (reference: ``numpy.histogram``), with
+    TensorBoard's bucket form: right edges, the overflow bucket ending at the max."""
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    from shiftwatch.reference import load_reference_file
+
+    model = make_model()
+    seen = []
+    model[4].register_forward_pre_hook(lambda m, a: seen.append(a[0].detach().clone()))
+    mon = ShiftMonitor(model, tmp_path, every_n_steps=1, reference_steps=2)
+    train(model, mon, 8, shift_at=6, shift=1.5, inner=True)  # values move past the edges
+    mon.save_reference(tmp_path / "ref.json")
+    mon.close()
+    edges = load_reference_file(tmp_path / "ref.json")[1]["4"].edges.numpy()
+    xs = seen[-1].double().numpy().ravel()  # 8 x 8 x 8 x 8 values: no subsample
+    inside, _ = np.histogram(xs, bins=edges)
+    inside[-1] -= np.sum(xs == edges[-1])  # numpy's last bin is closed; ours is half-open
+    want = [np.sum(xs < edges[0]), *inside, np.sum(xs >= edges[-1])]
+    limits = [*edges, xs.max()]
+    nz = np.flatnonzero(want)
+    acc = EventAccumulator(str(tmp_path), size_guidance={"histograms": 0})
+    acc.Reload()
+    last = acc.Histograms("hist.train/4")[-1]
+    h = last.histogram_value
+    assert last.step == 7
+    assert list(h.bucket) == [float(c) for c in want[nz[0]:nz[-1] + 1]]
+    assert list(h.bucket_limit) == pytest.approx(limits[nz[0]:nz[-1] + 1], rel=1e-12)
+    assert (h.min, h.max, h.num) == pytest.approx((xs.min(), xs.max(), xs.size), rel=1e-6)
+    assert h.sum == pytest.approx(xs.sum(), rel=1e-6, abs=1e-6)
+    assert h.sum_squares == pytest.approx((xs * xs).sum(), rel=1e-6)
+    assert want[-1] > 0  # the overflow bucket is exercised
+
+
 def test_works_without_tensorboard_installed(tmp_path):
     code = (
         "import sys; sys.modules['tensorboard'] = None  # import fails as if not installed\n"
