@@ -101,8 +101,12 @@ def test_groupnorm_statistics_do_not_depend_on_batch_size(gn_model, digits):
     for a, b in zip(small["layers"], large["layers"], strict=True):
         assert a["type"] == "GroupNorm" and a["batch_sizes"] is None
         assert a["batch_dependent"] is False
+        # each sample's statistics are the same whatever the batch; only the float32
+        # layer inputs differ in their last bits (a convolution's kernel choice depends
+        # on the batch size: measured 2.5e-9 relative on one CPU, 0 on another), so the
+        # bound is float32-sized -- a batch-dependent layer differs by ~1e-1
         for key in ("mean_spread", "log_var_spread", "values_per_group"):
-            assert a["statistics"][key] == pytest.approx(b["statistics"][key], rel=1e-9)
+            assert a["statistics"][key] == pytest.approx(b["statistics"][key], rel=1e-6)
 
 
 def _norm_outputs(model: nn.Module, batches, kind) -> list[torch.Tensor]:
