@@ -22,7 +22,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch.errors import ConfigError, ShiftWatchWarning
-from shiftwatch.sinks import EventLog
+from shiftwatch.sinks import EventLog, eventlog
 from shiftwatch.sinks.eventlog import dumps_line, to_json_value
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -120,18 +120,47 @@ def _expected(value):
 @settings(max_examples=150, deadline=None)
 @given(json_tree)
 def test_any_tree_round_trips_through_strict_json(tree):
-    line = dumps_line({"kind": "step", "data": tree})
+    line = dumps_line({"kind": "step", "data": tree})  # orjson when installed
     assert "\n" not in line  # one record, one line
     parsed = json.loads(line, parse_constant=_reject_constant)
     assert parsed["data"] == _expected(tree)
-    # the fast path (C encoder) and the converting path give the same text
+    # the standard-library path (taken without orjson) gives the same values, and its
+    # two branches (json's C encoder, and converting first) the same text
+    std = eventlog._dumps_std({"kind": "step", "data": tree})
+    assert json.loads(std, parse_constant=_reject_constant) == parsed
     slow = json.dumps(
         to_json_value({"kind": "step", "data": tree}),
         ensure_ascii=False,
         separators=(",", ":"),
         allow_nan=False,
     )
-    assert line == slow
+    assert std == slow
+
+
+def test_log_lines_hold_the_same_values_with_and_without_orjson(tmp_path, monkeypatch):
+    pytest.importorskip("orjson")  # the dev install has it: both encoders are compared
+    record = {"kind": "step", "a": [0.1, 1e-05, -0.0, 5e-324, 1.7976931348623157e308],
+              "nan": float("nan"), "inf": [float("inf"), -math.inf], "np": np.float64(2.5),
+              "arr": np.array([1.0, np.nan]), "t": torch.tensor([3.0, 4.0]), "i": 2**70,
+              "path": Path("runs/x"), "text": "Grüße ✓", "nested": {"k": (1, None, True)}}
+    assert eventlog._orjson is not None
+    with EventLog(tmp_path / "fast.jsonl") as log:
+        log.write(record)
+        log.write({k: v for k, v in record.items() if k != "i"})  # orjson takes this one
+    monkeypatch.setattr(eventlog, "_orjson", None)
+    with EventLog(tmp_path / "std.jsonl") as log:
+        log.write(record)
+        log.write({k: v for k, v in record.items() if k != "i"})
+
+    def lines(name):
+        rows = (tmp_path / name).read_text(encoding="utf-8").splitlines()
+        return [{k: v for k, v in json.loads(r).items() if k != "time"} for r in rows]
+
+    fast, std = lines("fast.jsonl"), lines("std.jsonl")
+    assert fast == std
+    assert fast[0]["nan"] is None and fast[0]["inf"] == [None, None] and fast[0]["i"] == 2**70
+    assert fast[1]["arr"] == [1.0, None] and fast[1]["path"] == "runs/x"
+    assert [math.copysign(1, v) for v in fast[1]["a"]][2] == -1.0  # -0.0 kept
 
 
 def test_unsupported_values_name_their_place():
@@ -217,7 +246,7 @@ def test_file_size_limit_mid_run_loses_only_the_cut_line(tmp_path):
     script = textwrap.dedent(
         f"""
         import json, resource, signal, warnings
-        from shiftwatch.sinks import EventLog
+        from shiftwatch.sinks import EventLog, eventlog
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)  # get EFBIG instead of being killed
         log = EventLog({str(path)!r})
         soft, hard = resource.getrlimit(resource.RLIMIT_FSIZE)
@@ -276,16 +305,22 @@ def test_concurrent_writers_never_interleave_within_a_line(tmp_path):
 
 
 def test_event_log_imports_only_the_standard_library():
-    # the module's own imports: the standard library (sys.stdlib_module_names) and
-    # shiftwatch.errors, nothing else
+    # the module's own imports: the standard library (sys.stdlib_module_names),
+    # shiftwatch.errors, and orjson only inside a try that catches ImportError
     tree = ast.parse((ROOT / "shiftwatch" / "sinks" / "eventlog.py").read_text())
-    imported = set()
+    imported, guarded = set(), set()
     for node in ast.walk(tree):
         if isinstance(node, ast.Import):
             imported.update(alias.name.split(".")[0] for alias in node.names)
         elif isinstance(node, ast.ImportFrom):
             imported.add("." * node.level + (node.module or "").split(".")[0])
-    assert imported - set(sys.stdlib_module_names) == {"..errors"}
+        elif isinstance(node, ast.Try) and any(
+                isinstance(h.type, ast.Name) and h.type.id == "ImportError"
+                for h in node.handlers):
+            guarded.update(a.name for n in node.body if isinstance(n, ast.Import)
+                           for a in n.names)
+    assert imported - set(sys.stdlib_module_names) == {"..errors", "orjson"}
+    assert guarded == {"orjson"}
 
 
 def test_descriptor_is_released(tmp_path):
