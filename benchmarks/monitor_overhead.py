@@ -14,6 +14,12 @@ event log and TensorBoard on (a temporary ``log_dir``).
 3. **Do-it-yourself hooks**: forward pre-hooks that call ``SummaryWriter.add_histogram``
    on each of the same layer inputs, every step; overhead per step (time minus a plain
    step) compared with the monitor's overhead per sampled step.  Target >= 20x less.
+Floors (printed, no target): the same steps with forward pre-hooks that only read every
+watched value once (``x.sum()``: what any monitor that looks at every value pays at
+least), and with hooks that run only the statistics' full-size passes
+(:func:`shiftwatch.cells.table_parts`, no histogram, no host work).  Their distance to
+the plain step bounds what target 1 leaves for everything else.
+
 4. **Memory**: RSS growth from step 1,000 to the end of a 20,000-step run sampling every
    10 steps (``--rss-steps`` to change; a smaller CNN on 3x16x16 inputs at batch 16 keeps
    this part short).  Target < 10 MB.
@@ -110,6 +116,24 @@ def diy_hooks(model: nn.Module, writer) -> list:
     return handles
 
 
+def floor_hooks(model: nn.Module, kind: str) -> list:
+    """Forward pre-hooks on the watched layers that do only part of the monitor's work:
+    ``"read"`` sums each input (one pass), ``"passes"`` runs the statistics' full-size
+    passes (stage one of the table; the float64 tail and the histogram are left out)."""
+    from shiftwatch.cells import table_parts
+
+    def read(m, args):
+        args[0].detach().sum()
+
+    def passes(m, args):
+        x = args[0].detach()
+        table_parts(x, 1 if x.ndim > 2 else x.ndim - 1)
+
+    hook = {"read": read, "passes": passes}[kind]
+    return [mod.register_forward_pre_hook(hook) for mod in model.modules()
+            if isinstance(mod, (nn.Conv2d, nn.BatchNorm2d, nn.Linear))]
+
+
 def rss_mb() -> float:
     with open("/proc/self/statm") as f:
         pages = int(f.read().split()[1])
@@ -130,14 +154,20 @@ def bench_steps(rounds: int, per_round: int, log_root: str) -> dict[str, float]:
     diy = Trainer(copy.deepcopy(base), x, y)
     writer = SummaryWriter(os.path.join(log_root, "diy"))
     handles = diy_hooks(diy.model, writer)
-    times: dict[str, list[float]] = {"plain": [], "sampled": [], "diy": []}
-    cpu: dict[str, list[float]] = {"plain": [], "sampled": [], "diy": []}
-    for t in (plain, mon, diy):  # warm-up (allocator, reference pooling, first events)
+    read = Trainer(copy.deepcopy(base), x, y)
+    handles += floor_hooks(read.model, "read")
+    passes = Trainer(copy.deepcopy(base), x, y)
+    handles += floor_hooks(passes.model, "passes")
+    variants = (("plain", plain), ("sampled", mon), ("diy", diy), ("read", read),
+                ("passes", passes))
+    times: dict[str, list[float]] = {k: [] for k, _ in variants}
+    cpu: dict[str, list[float]] = {k: [] for k, _ in variants}
+    for _, t in variants:  # warm-up (allocator, reference pooling, first events)
         for _ in range(6):
             t.step()
     mon.host_times.clear()
     for _ in range(rounds):
-        for key, t in (("plain", plain), ("sampled", mon), ("diy", diy)):
+        for key, t in variants:
             first = True
             for _ in range(per_round):
                 # the DIY writer serialises on a background thread: flush inside its own
@@ -239,6 +269,10 @@ def main() -> None:
     cpu_diy = (med["diy_cpu"] - med["plain_cpu"]) / max(med["sampled_cpu"] - med["plain_cpu"],
                                                         1e-9)
     print(f"  best-of-rounds sampled / plain      {best:8.3f}x   (minima of wall time)")
+    print(f"  floors: hooks reading every watched value once {med['read'] / med['plain']:.3f}x"
+          f", hooks running only the statistics' full-size passes "
+          f"{med['passes'] / med['plain']:.3f}x plain  (target 1 leaves the rest for the "
+          "histogram, the float64 tails and the host side)")
     print(f"  CPU time (all threads) per step: plain {med['plain_cpu'] * 1e3:.1f} ms, sampled "
           f"{med['sampled_cpu'] * 1e3:.1f} ms ({cpu_ratio:.3f}x), DIY overhead / ours "
           f"{cpu_diy:.1f}x  (CPU time is less inflated by other processes than wall time)")
