@@ -23,7 +23,14 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from .divergence import HIST_METRICS, METRICS, MOMENT_METRICS, hist_scores, moment_scores
+from .divergence import (
+    HIST_METRICS,
+    METRICS,
+    MOMENT_METRICS,
+    hist_scores,
+    moment_scores,
+    spread_terms,
+)
 from .rules import Observation
 from .summary import FIELDS, Summary
 
@@ -32,6 +39,9 @@ __all__ = ["Layout", "Parts", "compare_all", "edges_from_sample", "merge_flats"]
 _F = len(FIELDS)
 _IX = {k: i for i, k in enumerate(FIELDS)}
 _TOP = 3  # worst channels listed per metric
+# splits remembered per layout: per phase the current and previous sample, the
+# reference, and one pooling in progress
+_SPLITS_KEPT = 8
 
 
 @dataclass
@@ -42,9 +52,18 @@ class Parts:
     table: np.ndarray
     extrema: np.ndarray
     hist: np.ndarray
+    _spread: dict | None = field(default=None, repr=False)
 
     def layer_table(self, layout: Layout) -> np.ndarray:
         return self.table[layout.layer_rows]
+
+    def spread(self) -> dict[str, np.ndarray]:
+        """:func:`~shiftwatch.divergence.spread_terms` of the table's rows (computed on
+        first use and kept: a sample is scored as the current one, then as the previous
+        one, and the reference for many steps)."""
+        if self._spread is None:
+            self._spread = spread_terms(self.table)
+        return self._spread
 
 
 @dataclass(eq=False)
@@ -57,6 +76,7 @@ class Layout:
     channels: tuple[int, ...]
     bins: int
     _placeholders: dict = field(default_factory=dict, repr=False)
+    _splits: dict = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
         self.names, self.channels = tuple(self.names), tuple(int(c) for c in self.channels)
@@ -91,7 +111,18 @@ class Layout:
         return (self.bins + 2,) * len(self.names)
 
     def split(self, flat: np.ndarray) -> Parts:
-        return Parts(flat[self._table], flat[self._ext], flat[self._hist])
+        """The parts of a host flat.  The last few splits are remembered by the flat's
+        identity (the flat is held, so its id is not reused), so a sample split again
+        at later steps (as the previous sample, as the reference) keeps its cached
+        :meth:`Parts.spread`.  A flat must not be modified in place once split."""
+        hit = self._splits.get(id(flat))
+        if hit is not None and hit[0] is flat:
+            return hit[1]
+        parts = Parts(flat[self._table], flat[self._ext], flat[self._hist])
+        if len(self._splits) >= _SPLITS_KEPT:
+            self._splits.pop(next(iter(self._splits)))  # the oldest
+        self._splits[id(flat)] = (flat, parts)
+        return parts
 
     def empty(self) -> np.ndarray:
         """A host flat holding no data (counts 0, extrema +inf/-inf)."""
@@ -225,7 +256,12 @@ def compare_all(
     pools = [] if pool is None else [np.broadcast_to(pool.table, ot.shape)]
     n_c, n_o = ct[..., _IX["n"]], ot[..., _IX["n"]]
     ok_rows = (n_c > 0) & (n_o > 0)  # (K, R)
-    ms = moment_scores(ct, ot, pool=pools)
+    # each sample's spread terms once (cached on its Parts), not once per comparison
+    sp_o = [o.spread() for o in others]
+    spread = [cur.spread(), {k: np.stack([s[k] for s in sp_o]) for k in sp_o[0]}]
+    if pool is not None:
+        spread.append(pool.spread())
+    ms = moment_scores(ct, ot, pool=pools, spread=spread)
     mv = np.stack([ms[m].value for m in MOMENT_METRICS], 1)  # (K, 3, R)
     mn = np.stack([ms[m].noise for m in MOMENT_METRICS], 1)
     mr = np.stack([ms[m].ratio for m in MOMENT_METRICS], 1)

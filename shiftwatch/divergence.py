@@ -66,7 +66,7 @@ them for one layer.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -88,6 +88,7 @@ __all__ = [
     "hist_scores",
     "moment_scores",
     "psi_band",
+    "spread_terms",
 ]
 
 MOMENT_METRICS: tuple[str, ...] = ("mean_shift", "log_std_ratio", "gauss_kl")
@@ -134,11 +135,11 @@ def design_effect(table: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     standard error of the mean is than independence would give.  Returns ``(deff, dof)``;
     ``dof = rows - 1`` (0 where it cannot be estimated, and then ``deff = 1``).
     """
-    t = _spread_terms(np.asarray(table, dtype=np.float64))
+    t = spread_terms(np.asarray(table, dtype=np.float64))
     return t["deff"], t["dof"]
 
 
-def _spread_terms(t: np.ndarray) -> dict[str, np.ndarray]:
+def spread_terms(t: np.ndarray) -> dict[str, np.ndarray]:
     """Per table row (any leading shape): the design effect of the mean ``deff``, and
     the ingredients of the variance's standard error relative to the variance V,
     ``phi = Var(within-row variances) / V^2`` and ``beta = Var(row means) / V``, all with
@@ -179,8 +180,12 @@ class _Noise:
     freedom; the current sample's own estimate overrides when significantly larger
     (99% chi-square upper bound).  All tables are stacked and scored in one pass."""
 
-    def __init__(self, cur: np.ndarray, ref: np.ndarray, pool: Sequence[np.ndarray]):
-        t = _spread_terms(np.stack(np.broadcast_arrays(cur, ref, *pool)))
+    def __init__(self, cur: np.ndarray, ref: np.ndarray, pool: Sequence[np.ndarray],
+                 spread: Sequence[Mapping[str, np.ndarray]] | None = None):
+        if spread is None:
+            t = spread_terms(np.stack(np.broadcast_arrays(cur, ref, *pool)))
+        else:  # the same per-row terms, computed earlier table by table
+            t = {k: np.stack(np.broadcast_arrays(*(s[k] for s in spread))) for k in spread[0]}
         dof = t["dof"]
         den = dof.sum(0)
         cur_dof = dof[0]
@@ -218,15 +223,19 @@ def moment_scores(
     *,
     pool: Sequence[np.ndarray] = (),
     metrics: Sequence[str] = MOMENT_METRICS,
+    spread: Sequence[Mapping[str, np.ndarray]] | None = None,
 ) -> dict[str, Score]:
     """Moment metrics for every row of two summary tables (numpy, shape ``(..., F)``).
 
     ``pool`` lists further tables (e.g. a long reference) whose rows feed the pooled
     noise model; they must have the same shape.  Rows where either side has no finite
-    value score 0 with noise 0.
+    value score 0 with noise 0.  ``spread``: optionally the :func:`spread_terms` of
+    ``cur``, ``ref`` and each ``pool`` table, in that order (broadcastable to their row
+    shape), when the caller already has them: a table's terms depend on it alone, so a
+    monitor computes them once per sample rather than once per comparison.
     """
     c, r = _stats(cur), _stats(ref)
-    noise = _Noise(np.asarray(cur), np.asarray(ref), [np.asarray(p) for p in pool])
+    noise = _Noise(np.asarray(cur), np.asarray(ref), [np.asarray(p) for p in pool], spread)
     se2 = noise.se2_mean(c) + noise.se2_mean(r)
     rel2 = noise.rel_se2_var(c) + noise.rel_se2_var(r)
     empty = (c["n"] <= 0) | (r["n"] <= 0)

@@ -80,3 +80,32 @@ def test_merging_flats_equals_merging_summaries():
     np.testing.assert_allclose(merged, expect.numpy(), rtol=1e-12, atol=1e-12)
     # and an empty (placeholder) flat is the identity
     np.testing.assert_allclose(merge_flats(lay.empty(), f1, lay), f1, rtol=1e-12, atol=1e-12)
+
+
+def test_cached_spread_terms_and_remembered_splits_change_no_score():
+    """A sample's spread terms are cached on its Parts and splits are remembered by the
+    flat's identity, so the previous sample and the reference reuse them; the scores
+    are bitwise those of fresh Parts, with the pool on as in the monitor."""
+    g = torch.Generator().manual_seed(2)
+    lay = layout()
+    flats = [lay.pack(sample(g, 0.1 * k), torch.device("cpu")).numpy().copy()
+             for k in range(3)]
+    ranges = np.full((len(CHANNELS), 2), np.nan)
+    cur, prev, ref = (lay.split(f) for f in flats)
+    compare_all(prev, [ref], lay, ranges, pool=ref)  # prev and ref get cached terms
+    assert lay.split(flats[1]) is prev and prev._spread is not None
+    got = compare_all(cur, [lay.split(flats[1]), lay.split(flats[2])], lay, ranges,
+                      pool=lay.split(flats[2]))
+    fresh = Layout(lay.names, lay.channels, lay.bins)  # nothing remembered, nothing cached
+    want = compare_all(fresh.split(flats[0]), [fresh.split(flats[1]), fresh.split(flats[2])],
+                       fresh, ranges, pool=fresh.split(flats[2]))
+    for (gl, gc), (wl, wc) in zip(got, want, strict=True):
+        for key in wl:
+            np.testing.assert_array_equal(gl[key], wl[key])
+        for key in wc:
+            np.testing.assert_array_equal(gc[key], wc[key])
+    # an equal copy is another sample; old splits are forgotten, not kept forever
+    assert lay.split(flats[1].copy()) is not prev
+    for _ in range(10):
+        lay.split(flats[0].copy())
+    assert lay.split(flats[1]) is not prev and len(lay._splits) <= 8
