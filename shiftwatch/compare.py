@@ -27,6 +27,7 @@ from .divergence import (
     HIST_METRICS,
     METRICS,
     MOMENT_METRICS,
+    Score,
     hist_scores,
     moment_scores,
     spread_terms,
@@ -253,18 +254,20 @@ def compare_all(
     lr, L = layout.layer_rows, len(layout.names)
     ct = np.broadcast_to(cur.table, (k_o, *cur.table.shape))
     ot = np.stack([o.table for o in others])
-    pools = [] if pool is None else [np.broadcast_to(pool.table, ot.shape)]
     n_c, n_o = ct[..., _IX["n"]], ot[..., _IX["n"]]
     ok_rows = (n_c > 0) & (n_o > 0)  # (K, R)
-    # each sample's spread terms once (cached on its Parts), not once per comparison
+    # each sample's spread terms once (cached on its Parts), not once per comparison;
+    # the current sample and the pool enter with their own (R, F) rows, broadcast
+    # against the (K, R, F) stack of the others only where they meet
     sp_o = [o.spread() for o in others]
     spread = [cur.spread(), {k: np.stack([s[k] for s in sp_o]) for k in sp_o[0]}]
     if pool is not None:
         spread.append(pool.spread())
-    ms = moment_scores(ct, ot, pool=pools, spread=spread)
+    ms = moment_scores(cur.table, ot, pool=[] if pool is None else [pool.table],
+                       spread=spread)
     mv = np.stack([ms[m].value for m in MOMENT_METRICS], 1)  # (K, 3, R)
     mn = np.stack([ms[m].noise for m in MOMENT_METRICS], 1)
-    mr = np.stack([ms[m].ratio for m in MOMENT_METRICS], 1)
+    mr = Score(mv, mn).ratio
     ok_l = ok_rows[:, lr]  # (K, L)
     nm, k = len(METRICS), len(MOMENT_METRICS)
     value, noise, ratio = (np.full((k_o, nm, L), np.nan) for _ in range(3))
@@ -309,13 +312,13 @@ def compare_all(
     # segment reductions (reduceat) give per-layer maxima without sorting
     crow, starts, seg = layout.chan_rows, layout.chan_starts, layout.chan_seg
     ok_c = ok_rows[:, crow][:, None, :]  # (K, 1, Rc)
+    kx, mx = np.arange(k_o)[:, None, None], np.arange(k)[None, :, None]  # (K, 3, L) picks
     r_c = np.where(ok_c, mr[..., crow], -np.inf)  # (K, 3, Rc)
     v_c = np.where(ok_c, mv[..., crow], -np.inf)
     pos = np.arange(crow.size)
     worst, max_r = _seg_argmax(r_c, starts, seg, pos)
     amax_v, max_v = _seg_argmax(v_c, starts, seg, pos)
     any_ch = np.isfinite(max_r)
-    g = lambda a, i: np.take_along_axis(a, i, -1)  # noqa: E731
     cnt = np.maximum(np.add.reduceat(np.broadcast_to(ok_c, r_c.shape).astype(float),
                                      starts, axis=-1), 1)
     mean_v = np.add.reduceat(np.where(ok_c, mv[..., crow], 0.0), starts, axis=-1) / cnt
@@ -327,13 +330,15 @@ def compare_all(
         top.append(np.where(np.isfinite(m), found, -1))
     top = np.stack(top, -1)  # (K, 3, L, 3) channel-row positions, -1 pads
     top = np.where(top >= 0, top - starts[:, None], -1)
+    worst_row = crow[worst]  # (K, 3, L) table rows of the worst channels
+    worst_v, worst_n = mv[kx, mx, worst_row], mn[kx, mx, worst_row]
     out = []
     for i in range(k_o):
         channel = {
             "max_ratio": _nan_where(max_r[i], any_ch[i]),
             "worst": worst[i] - starts,
-            "worst_value": _nan_where(g(mv[i][:, crow], worst[i]), any_ch[i]),
-            "worst_noise": _nan_where(g(mn[i][:, crow], worst[i]), any_ch[i]),
+            "worst_value": _nan_where(worst_v[i], any_ch[i]),
+            "worst_noise": _nan_where(worst_n[i], any_ch[i]),
             "max_value": _nan_where(max_v[i], any_ch[i]),
             "argmax_value": amax_v[i] - starts,
             "mean_value": _nan_where(mean_v[i], any_ch[i]),

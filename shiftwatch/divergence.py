@@ -178,24 +178,26 @@ class _Noise:
 
     Each spread term is pooled over the tables (current, other side, pool) by degrees of
     freedom; the current sample's own estimate overrides when significantly larger
-    (99% chi-square upper bound).  All tables are stacked and scored in one pass."""
+    (99% chi-square upper bound).  The tables may have different but broadcastable row
+    shapes (one current sample against several others); each table's terms are
+    computed on its own rows (or passed in) and only the pooled sums broadcast."""
 
     def __init__(self, cur: np.ndarray, ref: np.ndarray, pool: Sequence[np.ndarray],
                  spread: Sequence[Mapping[str, np.ndarray]] | None = None):
         if spread is None:
-            t = spread_terms(np.stack(np.broadcast_arrays(cur, ref, *pool)))
-        else:  # the same per-row terms, computed earlier table by table
-            t = {k: np.stack(np.broadcast_arrays(*(s[k] for s in spread))) for k in spread[0]}
-        dof = t["dof"]
-        den = dof.sum(0)
-        cur_dof = dof[0]
+            spread = [spread_terms(t) for t in (cur, ref, *pool)]
+        dofs = [s["dof"] for s in spread]
+        den = sum(dofs[1:], dofs[0])
+        cur_dof = dofs[0]
         upper = _chi2_upper(cur_dof)
         pooled = {}
         for name, fallback in (("deff", 1.0), ("phi", 0.0), ("beta", 1.0)):
-            v = t[name]
-            p = np.where(den > 0, (v * dof).sum(0) / np.maximum(den, 1e-300), np.nan)
-            big = (cur_dof > 0) & np.isfinite(p) & (v[0] > p * upper)
-            p = np.where(big, v[0], p)
+            v0 = spread[0][name]
+            num = sum((s[name] * d for s, d in zip(spread[1:], dofs[1:], strict=True)),
+                      v0 * cur_dof)
+            p = np.where(den > 0, num / np.maximum(den, 1e-300), np.nan)
+            big = (cur_dof > 0) & np.isfinite(p) & (v0 > p * upper)
+            p = np.where(big, v0, p)
             pooled[name] = np.where(np.isfinite(p), p, fallback)
         self.deff = np.maximum(pooled["deff"], 1.0)
         self.phi, self.beta = pooled["phi"], pooled["beta"]
