@@ -199,13 +199,11 @@ def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
     the mean of its cell means, and so on.  (Sums divided by counts rather than
     ``ndarray.mean``, whose Python wrapper costs more than the arithmetic here.)"""
     n_rows = part[0].s1.shape[0]
-    ch = np.array([c.s1.shape[1] for c in part])
-    pr = np.array([c.per_row for c in part], dtype=np.float64)
-    starts = np.concatenate([[0], np.cumsum(ch)[:-1]])
+    ch, pr, starts, pr_c, w, order, cuts = _segments(
+        tuple(c.s1.shape[1] for c in part), tuple(float(c.per_row) for c in part))
     c_tot, n_l = int(ch.sum()), len(part)
     s1 = torch.cat([c.s1 for c in part], 1).numpy().astype(np.float64)
     s2 = torch.cat([c.s2 for c in part], 1).numpy().astype(np.float64)
-    pr_c = np.repeat(pr, ch)
     shift = np.concatenate([c.shift for c in part])
     big_m = np.empty((n_rows, c_tot + n_l))
     big_m2 = np.empty((n_rows, c_tot + n_l))
@@ -217,7 +215,6 @@ def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
     big_m[:, c_tot:] = m_r
     big_m2[:, c_tot:] = (np.add.reduceat(m2, starts, axis=1)
                          + pr * np.add.reduceat(dev * dev, starts, axis=1))
-    w = np.concatenate([pr_c, pr * ch])  # values per cell
     mean = big_m.sum(0) / n_rows
     dev = big_m - mean
     ss = np.einsum("ij,ij->j", dev, dev)
@@ -232,9 +229,28 @@ def _finish_dense_segments(part: list[DenseCells]) -> list[np.ndarray]:
     table = np.empty((c_tot + n_l, len(FIELDS)))
     for k, name in enumerate(FIELDS):
         table[:, k] = cols[name]
+    return np.split(table[order], cuts)
+
+
+@functools.lru_cache(maxsize=64)
+def _segments(channels: tuple[int, ...], per_row: tuple[float, ...]):
+    """Index arithmetic of :func:`_finish_dense_segments` for one set of layers (the
+    same at every sampled step): channel counts ``ch``, values per cell ``pr`` per
+    layer, column ``starts``, values per cell per channel column ``pr_c`` and per table
+    column ``w``, the row ``order`` that puts each layer's channel rows before its layer
+    row, and the ``cuts`` between layers.  The arrays are shared: read only."""
+    ch = np.array(channels)
+    pr = np.array(per_row, dtype=np.float64)
+    starts = np.concatenate([[0], np.cumsum(ch)[:-1]])
+    c_tot = int(ch.sum())
+    pr_c = np.repeat(pr, ch)
+    w = np.concatenate([pr_c, pr * ch])
     order = np.concatenate([np.r_[s:s + c, c_tot + j]
                             for j, (s, c) in enumerate(zip(starts, ch, strict=True))])
-    return np.split(table[order], np.cumsum(ch + 1)[:-1])
+    out = (ch, pr, starts, pr_c, w, order, np.cumsum(ch + 1)[:-1])
+    for a in out:
+        a.flags.writeable = False
+    return out
 
 
 def _single_values_dense(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
