@@ -16,6 +16,7 @@ deviations, which scale the same way).
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -296,7 +297,7 @@ def compare_all(
         deff = np.where(np.isfinite(deff), np.maximum(deff, 1.0), 1.0)
         frac = np.where(n_c[:, lr] > 0, hn_c / np.maximum(n_c[:, lr], 1), 1.0)
         deff_h = np.maximum(1.0, 1.0 + (deff - 1.0) * frac)
-        unit = np.linspace(0.0, 1.0, layout.bins + 1)
+        unit = _unit_edges(layout.bins)
         hs = hist_scores(
             ch, oh, unit,
             cur_extrema=(cur.extrema - base) / width[:, None],
@@ -346,6 +347,14 @@ def compare_all(
         }
         out.append(({"value": value[i], "noise": noise[i], "ratio": ratio[i]}, channel))
     return out
+
+
+@functools.lru_cache(maxsize=8)
+def _unit_edges(bins: int) -> np.ndarray:
+    """``bins + 1`` evenly spaced edges on ``[0, 1]`` (read only; shared)."""
+    e = np.linspace(0.0, 1.0, bins + 1)
+    e.flags.writeable = False
+    return e
 
 
 def _seg_argmax(a: np.ndarray, starts: np.ndarray, seg: np.ndarray, pos: np.ndarray):
