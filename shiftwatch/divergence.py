@@ -230,7 +230,9 @@ def moment_scores(
     """Moment metrics for every row of two summary tables (numpy, shape ``(..., F)``).
 
     ``pool`` lists further tables (e.g. a long reference) whose rows feed the pooled
-    noise model; they must have the same shape.  Rows where either side has no finite
+    noise model.  ``cur``, ``ref`` and the pool tables must broadcast against each other
+    (e.g. one ``(R, F)`` current table against a ``(K, R, F)`` stack of others; the
+    scores then have shape ``(K, R)``).  Rows where either side has no finite
     value score 0 with noise 0.  ``spread``: optionally the :func:`spread_terms` of
     ``cur``, ``ref`` and each ``pool`` table, in that order (broadcastable to their row
     shape), when the caller already has them: a table's terms depend on it alone, so a

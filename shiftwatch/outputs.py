@@ -115,9 +115,10 @@ class TensorBoardOutput:
         key = (phase, against)
         tags = self._tags.get(key)
         if tags is None:
-            flat = [stat_tag(phase, k, n) for k in _TB_STATS for n in names]
-            flat += [scalar_tag(phase, a, m, n) for a in against for m in METRICS for n in names]
-            tags = self._tags[key] = np.array(flat, dtype=object)
+            ordered = [stat_tag(phase, k, n) for k in _TB_STATS for n in names]
+            ordered += [scalar_tag(phase, a, m, n) for a in against for m in METRICS
+                        for n in names]
+            tags = self._tags[key] = np.array(ordered, dtype=object)
         return tags
 
     def _bucket_limits(self, i: int, lo: float, hi: float) -> tuple[float, ...]:

@@ -161,6 +161,19 @@ def test_log_lines_hold_the_same_values_with_and_without_orjson(tmp_path, monkey
     assert fast[0]["nan"] is None and fast[0]["inf"] == [None, None] and fast[0]["i"] == 2**70
     assert fast[1]["arr"] == [1.0, None] and fast[1]["path"] == "runs/x"
     assert [math.copysign(1, v) for v in fast[1]["a"]][2] == -1.0  # -0.0 kept
+    # what the standard library refuses, the orjson path refuses too, with its message
+    import dataclasses
+    import datetime
+
+    @dataclasses.dataclass
+    class Point:
+        x: float
+
+    monkeypatch.undo()
+    assert eventlog._orjson is not None
+    for bad, kind in ((Point(1.0), "Point"), (datetime.datetime(2026, 1, 1), "datetime")):
+        with pytest.raises(TypeError, match=rf"record\['v'\] has type {kind}"):
+            dumps_line({"v": bad})
 
 
 def test_unsupported_values_name_their_place():

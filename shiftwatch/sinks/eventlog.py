@@ -40,6 +40,8 @@ try:  # optional accelerator; the standard library path below gives the same val
     import orjson as _orjson
 except ImportError:  # pragma: no cover - depends on the environment
     _orjson = None
+_ORJSON_OPTIONS = 0 if _orjson is None else (
+    _orjson.OPT_PASSTHROUGH_DATACLASS | _orjson.OPT_PASSTHROUGH_DATETIME)
 
 __all__ = ["SCHEMA_VERSION", "EventLog", "dumps_line", "to_json_value"]
 
@@ -149,8 +151,10 @@ def _encode(record: Any) -> bytes:
     """:func:`dumps_line` as UTF-8 bytes (what the file gets)."""
     if _orjson is not None:
         try:
-            # orjson writes NaN and infinities as null itself
-            return _orjson.dumps(record, default=_default)
+            # orjson writes NaN and infinities as null itself; dataclasses and datetimes
+            # go to ``default`` (which refuses them) so that both paths accept the same
+            # records
+            return _orjson.dumps(record, default=_default, option=_ORJSON_OPTIONS)
         except TypeError:  # orjson.JSONEncodeError: let the standard path decide/explain
             pass
     return _dumps_std(record).encode("utf-8")
