@@ -19,15 +19,16 @@ from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning, Unsupported
 # public name -> module that defines it (imported on first access)
 _LAZY = {
     "ShiftMonitor": ".monitor",
-    "Alert": ".rules", "Rule": ".rules", "default_rules": ".rules", "load_rules": ".rules",
+    "Alert": ".judge", "Rule": ".rules", "default_rules": ".rules", "load_rules": ".rules",
     "rules_from_toml": ".rules",
     "FIELDS": ".summary", "Summary": ".summary", "make_edges": ".summary",
     "summarize": ".summary",
 }
 
 if TYPE_CHECKING:  # for type checkers and IDEs: the same names, eagerly
+    from .judge import Alert
     from .monitor import ShiftMonitor
-    from .rules import Alert, Rule, default_rules, load_rules, rules_from_toml
+    from .rules import Rule, default_rules, load_rules, rules_from_toml
     from .summary import FIELDS, Summary, make_edges, summarize
 
 

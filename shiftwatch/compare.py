@@ -33,7 +33,7 @@ from .divergence import (
     moment_scores,
     spread_terms,
 )
-from .rules import Observation
+from .judge import Observation
 from .summary import FIELDS, Summary
 
 __all__ = ["Layout", "Parts", "compare_all", "edges_from_sample", "merge_flats"]
@@ -373,7 +373,7 @@ def observation(
     stats: dict[str, np.ndarray],
     results: dict[str, tuple[dict, dict]],
 ) -> Observation:
-    """Bundle a step's scores for :class:`~shiftwatch.rules.Judge`."""
+    """Bundle a step's scores for :class:`~shiftwatch.judge.Judge`."""
     present = (stats["count"] + stats["nonfinite"]) > 0
     std = np.where(stats["count"] >= 2, stats["std"], np.nan)
     return Observation(

@@ -229,7 +229,7 @@ class ShiftCallback(Callback):
     @property
     def alerts(self) -> list:
         """The alerts of the current (or last) run of this process, as
-        :class:`~shiftwatch.rules.Alert` records.  With ``strategy="ddp_spawn"`` the runs
+        :class:`~shiftwatch.judge.Alert` records.  With ``strategy="ddp_spawn"`` the runs
         happen in child processes: read ``events.jsonl`` instead."""
         return list(self.monitor.alerts) if self.monitor is not None else list(self._last_alerts)
 

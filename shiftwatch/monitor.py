@@ -54,9 +54,10 @@ from .capture import PHASES, Capture
 from .compare import Layout, compare_all, edges_from_sample, layer_stats, merge_flats, observation
 from .distributed import PackLayout, SummaryReducer, rank_and_world
 from .errors import ConfigError, ShiftAlertError, ShiftWatchWarning
+from .judge import Alert, Judge, Observation, with_action
 from .outputs import TensorBoardOutput, step_record
 from .reference import Reference, load_reference_file, save_reference_file
-from .rules import Alert, Judge, Observation, Rule, default_rules, load_rules, with_action
+from .rules import Rule, default_rules, load_rules
 from .sinks.eventlog import EventLog
 from .summary import Summary
 

@@ -144,7 +144,7 @@ class TensorBoardOutput:
         :func:`~shiftwatch.compare.layer_stats`, ``results`` comparison name ->
         ``(layer, channel)`` as :func:`~shiftwatch.compare.compare_all` returned them
         (absent: not available at this step), ``ranges`` the ``(L, 2)`` histogram ranges
-        (NaN: no edges yet), ``alerts`` the step's :class:`~shiftwatch.rules.Alert`
+        (NaN: no edges yet), ``alerts`` the step's :class:`~shiftwatch.judge.Alert`
         objects."""
         from .sinks.tensorboard import HistogramData, histogram_tag
 

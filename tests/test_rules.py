@@ -7,7 +7,8 @@ import pytest
 
 from shiftwatch import ConfigError, Rule, default_rules, load_rules, rules_from_toml
 from shiftwatch.divergence import METRICS, MOMENT_METRICS
-from shiftwatch.rules import ENTRY, Judge, Observation
+from shiftwatch.judge import Judge, Observation
+from shiftwatch.rules import ENTRY
 
 LAYERS = ("conv1", "bn1", "fc")
 
