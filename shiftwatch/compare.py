@@ -17,6 +17,7 @@ deviations, which scale the same way).
 from __future__ import annotations
 
 import functools
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -41,9 +42,6 @@ __all__ = ["Layout", "Parts", "compare_all", "edges_from_sample", "merge_flats"]
 _F = len(FIELDS)
 _IX = {k: i for i, k in enumerate(FIELDS)}
 _TOP = 3  # worst channels listed per metric
-# splits remembered per layout: per phase the current and previous sample, the
-# reference, and one pooling in progress
-_SPLITS_KEPT = 8
 
 
 @dataclass
@@ -113,17 +111,19 @@ class Layout:
         return (self.bins + 2,) * len(self.names)
 
     def split(self, flat: np.ndarray) -> Parts:
-        """The parts of a host flat.  The last few splits are remembered by the flat's
-        identity (the flat is held, so its id is not reused), so a sample split again
-        at later steps (as the previous sample, as the reference) keeps its cached
-        :meth:`Parts.spread`.  A flat must not be modified in place once split."""
-        hit = self._splits.get(id(flat))
-        if hit is not None and hit[0] is flat:
+        """The parts of a host flat.  While the flat is alive its split is remembered
+        (by identity, with a weak reference: the entry goes when the flat does), so a
+        sample split again at later steps (as the previous sample, as the reference)
+        keeps its cached :meth:`Parts.spread`.  Memory: the parts of the flats still
+        alive, which the monitor bounds (per phase the current and previous sample, and
+        the reference).  A flat must not be modified in place once split."""
+        key = id(flat)
+        hit = self._splits.get(key)
+        if hit is not None and hit[0]() is flat:
             return hit[1]
         parts = Parts(flat[self._table], flat[self._ext], flat[self._hist])
-        if len(self._splits) >= _SPLITS_KEPT:
-            self._splits.pop(next(iter(self._splits)))  # the oldest
-        self._splits[id(flat)] = (flat, parts)
+        self._splits[key] = (weakref.ref(flat), parts)
+        weakref.finalize(flat, self._splits.pop, key, None)
         return parts
 
     def empty(self) -> np.ndarray:

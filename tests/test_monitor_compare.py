@@ -104,8 +104,10 @@ def test_cached_spread_terms_and_remembered_splits_change_no_score():
             np.testing.assert_array_equal(gl[key], wl[key])
         for key in wc:
             np.testing.assert_array_equal(gc[key], wc[key])
-    # an equal copy is another sample; old splits are forgotten, not kept forever
+    # an equal copy is another sample; a split is forgotten with its flat
     assert lay.split(flats[1].copy()) is not prev
     for _ in range(10):
-        lay.split(flats[0].copy())
-    assert lay.split(flats[1]) is not prev and len(lay._splits) <= 8
+        lay.split(flats[0].copy())  # each copy dies at once
+    assert len(lay._splits) == 3 and lay.split(flats[1]) is prev
+    del flats[1]
+    assert len(lay._splits) == 2
