@@ -10,6 +10,14 @@ the plain step.  The hook parts (``table_parts``: the statistics' full-size pass
 Target 1 of the monitor issue (a sampled step at most 1.15x a plain one) is 15% of the
 plain step for everything together; this shows which parts use it.
 
+It also prints the fastest and the median time of ``monitor.step()`` (the host side),
+which is steadier than the step times on a shared machine.  To compare with an older
+commit, check it out beside this tree and alternate runs of both::
+
+    git worktree add /tmp/old <commit>
+    PYTHONPATH=/tmp/old .venv/bin/python benchmarks/monitor_breakdown.py   # the old code
+    .venv/bin/python benchmarks/monitor_breakdown.py                       # this tree
+
 Run: ``.venv/bin/python benchmarks/monitor_breakdown.py [--steps 80]``.
 """
 
@@ -19,6 +27,7 @@ import argparse
 import collections
 import copy
 import functools
+import statistics
 import tempfile
 import time
 import warnings
@@ -42,7 +51,8 @@ PARTS = (  # (owner, attribute, label)
 )
 
 
-def wrap(owner, name: str, label: str, acc: dict[str, float]) -> None:
+def wrap(owner, name: str, label: str, acc: dict[str, float],
+         calls: dict[str, list[float]]) -> None:
     f = getattr(owner, name)
 
     @functools.wraps(f)
@@ -51,7 +61,9 @@ def wrap(owner, name: str, label: str, acc: dict[str, float]) -> None:
         try:
             return f(*a, **k)
         finally:
-            acc[label] += time.perf_counter() - t0
+            dt = time.perf_counter() - t0
+            acc[label] += dt
+            calls[label].append(dt)
 
     setattr(owner, name, timed)
 
@@ -64,8 +76,9 @@ def main() -> None:
     torch.set_num_threads(args.threads)
     warnings.simplefilter("ignore")
     acc: dict[str, float] = collections.defaultdict(float)
+    calls: dict[str, list[float]] = collections.defaultdict(list)
     for owner, name, label in PARTS:
-        wrap(owner, name, label, acc)
+        wrap(owner, name, label, acc, calls)
     g = torch.Generator().manual_seed(0)
     x, y = torch.randn(64, 3, 32, 32, generator=g), torch.randint(0, 10, (64,), generator=g)
     base = SmallCNN()
@@ -77,6 +90,7 @@ def main() -> None:
             mon.step()
             plain.step()
         acc.clear()
+        calls.clear()
         t_plain = t_mon = 0.0
         for _ in range(args.steps):
             t0 = time.perf_counter()
@@ -92,6 +106,9 @@ def main() -> None:
     for _, _, label in PARTS:
         ms = acc[label] / n
         print(f"  {label:42s} {ms * 1e3:7.3f} ms  {ms / p:6.1%} of a plain step")
+    host = sorted(calls["step(): all"])
+    print(f"monitor.step(): fastest {host[0] * 1e3:.2f} ms, median "
+          f"{statistics.median(host) * 1e3:.2f} ms over {len(host)} sampled steps")
 
 
 if __name__ == "__main__":
