@@ -292,14 +292,14 @@ class ShiftMonitor:
             if self.log_dir is None:
                 raise ConfigError("'tensorboard=True' needs a 'log_dir'; pass log_dir=...")
             try:
-                return TensorBoardOutput(TensorBoardSink(self.log_dir), self.bins)
+                return TensorBoardOutput(TensorBoardSink(self.log_dir))
             except ImportError:
                 if option is True:
                     raise
                 logger.info("shiftwatch: TensorBoard is not installed; writing events.jsonl only "
                             "(pip install shiftwatch[tensorboard] to get TensorBoard logs)")
                 return None
-        return TensorBoardOutput(TensorBoardSink(writer=option), self.bins)
+        return TensorBoardOutput(TensorBoardSink(writer=option))
 
     # ------------------------------------------------------------------ schedule
     def is_sampled(self, step: int) -> bool:
@@ -582,8 +582,8 @@ class ShiftMonitor:
             self._write(a.to_record())
         if self._tb is not None:
             stats, results = scored
-            self._tb.write(phase, step, self._layout, self._ranges, flat, stats, results,
-                           decision.alerts)
+            self._tb.write(phase, step, self._layout, [t.edges for t in self._capture.taps],
+                           flat, stats, results, decision.alerts)
 
     # ------------------------------------------------------------------ reference file
     def save_reference(self, path: str | os.PathLike) -> Path:

@@ -13,6 +13,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from torch import Tensor
 
 from .capture import PHASES
 from .compare import Layout
@@ -90,21 +91,17 @@ class TensorBoardOutput:
     appears).
 
     Everything is taken from the arrays the step was scored into (no record dicts are
-    walked): the tags of a phase are built once as arrays in the order of those arrays,
-    and the histogram bucket limits of a layer once per histogram range.  A scalar that
-    is NaN (no data, or a metric not available yet) is not written.
+    walked): the tags of a phase are built once as arrays in the order of those arrays.
+    A scalar that is NaN (no data, or a metric not available yet) is not written.
 
     Args:
         sink: the open sink (closed by :meth:`close`).
-        bins: histogram bins per layer (the edges are ``bins + 1`` evenly spaced values
-            over each layer's range).
     """
 
-    def __init__(self, sink: Any, bins: int) -> None:
-        self.sink, self.bins = sink, bins
+    def __init__(self, sink: Any) -> None:
+        self.sink = sink
         self._tags: dict[tuple[str, tuple[str, ...]], np.ndarray] = {}
         self._hist_tags: dict[str, list[str]] = {}
-        self._limits: dict[int, tuple[tuple[float, float], tuple[float, ...]]] = {}
         self._phases: tuple[str, ...] = ()
 
     def _scalar_tags(self, phase: str, names: Sequence[str], against: tuple[str, ...]):
@@ -121,20 +118,12 @@ class TensorBoardOutput:
             tags = self._tags[key] = np.array(ordered, dtype=object)
         return tags
 
-    def _bucket_limits(self, i: int, lo: float, hi: float) -> tuple[float, ...]:
-        """The ``bins + 1`` edges of layer ``i`` as floats (cached while its range holds)."""
-        cached = self._limits.get(i)
-        if cached is None or cached[0] != (lo, hi):
-            cached = self._limits[i] = (
-                (lo, hi), tuple(np.linspace(lo, hi, self.bins + 1).tolist()))
-        return cached[1]
-
     def write(
         self,
         phase: str,
         step: int,
         layout: Layout,
-        ranges: np.ndarray,
+        edges: Sequence[Tensor | None],
         flat: np.ndarray,
         stats: Mapping[str, np.ndarray],
         results: Mapping[str, tuple[dict, dict]],
@@ -143,9 +132,9 @@ class TensorBoardOutput:
         """One sampled step of ``phase``: ``flat`` the host sample, ``stats`` its
         :func:`~shiftwatch.compare.layer_stats`, ``results`` comparison name ->
         ``(layer, channel)`` as :func:`~shiftwatch.compare.compare_all` returned them
-        (absent: not available at this step), ``ranges`` the ``(L, 2)`` histogram ranges
-        (NaN: no edges yet), ``alerts`` the step's :class:`~shiftwatch.judge.Alert`
-        objects."""
+        (absent: not available at this step), ``edges`` each layer's histogram edges (the
+        ones its counts were made with; ``None``: no histogram yet), ``alerts`` the step's
+        :class:`~shiftwatch.judge.Alert` objects."""
         from .sinks.tensorboard import HistogramData, histogram_tag
 
         names = layout.names
@@ -161,7 +150,7 @@ class TensorBoardOutput:
         scalars = dict(zip(tags[keep].tolist(), values[keep].tolist(), strict=True))
         hists = {}
         hist = layout.split(flat).hist
-        drawn = np.flatnonzero(~np.isnan(ranges[:, 0]) & (hist.sum(1) > 0)).tolist()
+        drawn = [i for i in np.flatnonzero(hist.sum(1) > 0).tolist() if edges[i] is not None]
         if drawn:
             htags = self._hist_tags.get(phase)
             if htags is None:
@@ -171,7 +160,7 @@ class TensorBoardOutput:
             for i in drawn:
                 n, mean = n_[i], mean_[i]
                 hists[htags[i]] = HistogramData.trusted(
-                    edges=self._bucket_limits(i, *ranges[i].tolist()),
+                    edges=tuple(edges[i].tolist()),
                     counts=tuple(hist[i].tolist()), min=lo_[i], max=hi_[i], num=n,
                     sum=n * mean, sum_squares=m2_[i] + n * mean * mean)
         self.sink.write_step(step, phase, scalars, hists)
